@@ -1,0 +1,1 @@
+"""echowatch trainer half: logs in, a calibrated bidirectional LSTM reconstructor out (ONNX)."""
