@@ -1,0 +1,1 @@
+"""The dashboard: server-rendered pages (routes.router), signed sessions, SVG charts."""
