@@ -67,3 +67,58 @@ def test_f1_matches_sklearn_plain_and_point_adjusted(pairs: list[tuple[bool, boo
     assert f1_score(y, p) == pytest.approx(sk_metrics.f1_score(y, p, zero_division=0.0))
     adjusted = point_adjust(y, p)
     assert f1_score(y, adjusted) == pytest.approx(sk_metrics.f1_score(y, adjusted, zero_division=0.0))
+
+
+def _normal_windows(n: int = 300, w: int = 12, c: int = 3) -> np.ndarray:
+    rng = np.random.default_rng(11)
+    t = np.arange(w)
+    phase = rng.uniform(0, 2 * np.pi, size=(n, 1, 1))
+    base = np.sin(2 * np.pi * t[None, :, None] / w + phase) * np.array([1.0, 0.5, 2.0])
+    return base + 0.1 * rng.normal(size=(n, w, c))
+
+
+def test_pca_baseline_reconstruction_matches_sklearn_pca() -> None:
+    from sklearn.decomposition import PCA
+
+    from training.baselines import PcaReconstruction
+
+    train = _normal_windows()
+    test = _normal_windows(40) + np.linspace(0, 1, 40)[:, None, None]
+    ours = PcaReconstruction().fit(train)
+    k = ours.n_components
+    assert 1 <= k < train.shape[1] * train.shape[2]
+    # Reference: sklearn.decomposition.PCA with the same number of components; the squared
+    # reconstruction error of the centred, flattened window is the same number.
+    ref = PCA(n_components=k, svd_solver="full").fit(train.reshape(len(train), -1))
+    flat = test.reshape(len(test), -1)
+    ref_err = np.mean((flat - ref.inverse_transform(ref.transform(flat))) ** 2, axis=1)
+    np.testing.assert_allclose(ours.score(test), ref_err, rtol=1e-8, atol=1e-12)
+    # Reference: sklearn's explained_variance_ratio_ — k is the fewest reaching 90%.
+    ratio = np.cumsum(PCA(svd_solver="full").fit(train.reshape(len(train), -1)).explained_variance_ratio_)
+    assert ratio[k - 1] >= 0.90 and (k == 1 or ratio[k - 2] < 0.90)
+
+
+def test_robust_z_spread_matches_scipy_mad() -> None:
+    from scipy.stats import median_abs_deviation
+
+    from training.baselines import RobustZ
+
+    train = _normal_windows()
+    rz = RobustZ().fit(train)
+    points = train.reshape(-1, train.shape[2])
+    # Reference: scipy.stats.median_abs_deviation(scale="normal") (MAD / 0.67449).
+    np.testing.assert_allclose(rz.sigma, median_abs_deviation(points, axis=0, scale="normal"), rtol=1e-4)
+
+
+def test_isolation_forest_baseline_ranks_shifted_windows_higher() -> None:
+    from training.baselines import IsolationForestSummary
+
+    train = _normal_windows()
+    shifted = _normal_windows(50) + 1.5
+    forest = IsolationForestSummary(seed=0, n_estimators=50).fit(train)
+    scores = np.r_[forest.score(_normal_windows(50)), forest.score(shifted)]
+    labels = np.r_[np.zeros(50), np.ones(50)]
+    # Reference: sklearn.ensemble.IsolationForest's score_samples (lower = more abnormal),
+    # and sklearn.metrics.roc_auc_score for the separation.
+    assert np.all(scores > 0)
+    assert sk_metrics.roc_auc_score(labels, scores) > 0.95
