@@ -1,0 +1,128 @@
+"""Dependencies as Annotated aliases: the database session, the calling key, role checks.
+
+Roles: machine posts readings and scores; maintenance < operator < admin for people;
+admin may also do machine actions. Machine keys may be limited to named assets.
+
+Use in a route:
+    def route(db: DbSession, caller: Annotated[Caller, Depends(require_role("operator"))]): ...
+or the ready-made aliases MachineCaller, MaintenanceCaller, OperatorCaller, AdminCaller.
+State-changing routes take `WriteSession` (on SQLite it holds the write lock from the start).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from typing import Annotated
+
+from fastapi import Depends, Request
+from sqlalchemy.orm import Session
+
+from service.db.keys import find_key
+from service.db.session import Database
+from service.errors import Forbidden, Unauthorized
+from service.metrics import Metrics
+from service.models_registry import ModelRegistry
+from service.settings import Settings
+
+PEOPLE_RANK = {"maintenance": 1, "operator": 2, "admin": 3}
+
+
+@dataclass(frozen=True)
+class Caller:
+    key_id: int
+    name: str
+    role: str
+    assets: frozenset[str] | None  # None = every asset
+
+    def has_role(self, needed: str) -> bool:
+        if self.role == "admin":
+            return True
+        if needed == "machine" or self.role == "machine":
+            return self.role == needed
+        return PEOPLE_RANK.get(self.role, 0) >= PEOPLE_RANK[needed]
+
+    def may_use_asset(self, asset_id: str) -> bool:
+        return self.assets is None or asset_id in self.assets
+
+
+def get_database(request: Request) -> Database:
+    return request.app.state.db
+
+
+def get_settings(request: Request) -> Settings:
+    return request.app.state.settings
+
+
+def get_registry(request: Request) -> ModelRegistry:
+    return request.app.state.registry
+
+
+def get_metrics(request: Request) -> Metrics:
+    return request.app.state.metrics
+
+
+def get_db(request: Request) -> Iterator[Session]:
+    with request.app.state.db.session() as session:
+        yield session
+
+
+def get_write_db(request: Request) -> Iterator[Session]:
+    with request.app.state.db.write_session() as session:
+        yield session
+
+
+DbSession = Annotated[Session, Depends(get_db)]
+WriteSession = Annotated[Session, Depends(get_write_db)]
+SettingsDep = Annotated[Settings, Depends(get_settings)]
+RegistryDep = Annotated[ModelRegistry, Depends(get_registry)]
+MetricsDep = Annotated[Metrics, Depends(get_metrics)]
+DatabaseDep = Annotated[Database, Depends(get_database)]
+
+
+def bearer_key(request: Request) -> str | None:
+    header = request.headers.get("authorization")
+    if not header:
+        return None
+    scheme, _, value = header.partition(" ")
+    if scheme.lower() != "bearer" or not value.strip():
+        return None
+    return value.strip()
+
+
+def get_caller(request: Request) -> Caller:
+    """The key's owner; 401 without a key or with a wrong or revoked one."""
+    cached = getattr(request.state, "caller", None)
+    if isinstance(cached, Caller):
+        return cached
+    key = bearer_key(request)
+    if key is None:
+        raise Unauthorized("send an API key: 'Authorization: Bearer <key>' (create one with `echowatch keys create`)")
+    with request.app.state.db.session() as session:
+        row = find_key(session, key=key)
+        if row is None:
+            raise Unauthorized("this API key is unknown or revoked")
+        caller = Caller(row.id, row.name, row.role, frozenset(row.assets) if row.assets is not None else None)
+    request.state.caller = caller
+    return caller
+
+
+def require_role(role: str) -> Callable[[Request], Caller]:
+    """A dependency that lets the caller through only with `role` (or above); 403 otherwise."""
+    if role not in ("machine", *PEOPLE_RANK):
+        raise ValueError(f"unknown role {role!r}")
+
+    def _check(caller: Annotated[Caller, Depends(get_caller)]) -> Caller:
+        if not caller.has_role(role):
+            raise Forbidden(f"this needs a {role} key; yours ({caller.name}) is {caller.role}")
+        return caller
+
+    _check.__name__ = f"require_{role}"
+    return _check
+
+
+AnyCaller = Annotated[Caller, Depends(get_caller)]
+MachineCaller = Annotated[Caller, Depends(require_role("machine"))]
+MaintenanceCaller = Annotated[Caller, Depends(require_role("maintenance"))]
+OperatorCaller = Annotated[Caller, Depends(require_role("operator"))]
+AdminCaller = Annotated[Caller, Depends(require_role("admin"))]

@@ -1,0 +1,231 @@
+"""`create_app(settings)`: the FastAPI application, with a lifespan that opens the
+database (upgrading a new one), loads and validates the models, and runs retention
+pruning in the background. Nothing is created at import time.
+
+Routers are included from the modules that exist, so the halves of the service can land
+independently: readings and health (core), alerts, thresholds and models (alerts work),
+and the dashboard (service.web.routes, static files at /static).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import importlib
+import logging
+import time
+from collections.abc import AsyncIterator
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+from typing import Any
+
+from fastapi import FastAPI
+from fastapi.staticfiles import StaticFiles
+
+from service.db.migrate import current_revision, head_revision, upgrade
+from service.db.session import Database
+from service.errors import error_response, install_error_handlers
+from service.metrics import Metrics
+from service.models_registry import ModelRegistry
+from service.settings import Settings
+
+log = logging.getLogger("echowatch")
+
+API_ROUTER_MODULES = (
+    "service.api.readings",
+    "service.api.health",
+    "service.api.alerts",
+    "service.api.thresholds",
+    "service.api.models",
+)
+WEB_ROUTER_MODULE = "service.web.routes"
+STATIC_DIR = Path(__file__).parent / "web" / "static"
+
+
+class StartupError(RuntimeError):
+    """The service cannot start (bad model, database behind the code); the message says why."""
+
+
+def open_database(settings: Settings) -> Database:
+    """Open the database and make sure its schema is current (upgrading it if allowed)."""
+    db = Database(settings.database_url, busy_timeout_ms=settings.db_busy_timeout_ms)
+    try:
+        if settings.auto_upgrade:
+            upgrade(db.engine)
+        else:
+            have, want = current_revision(db.engine), head_revision()
+            if have != want:
+                raise StartupError(
+                    f"database schema is at {have or 'nothing'}, this code needs {want}: run `echowatch db upgrade`"
+                )
+    except Exception:
+        db.dispose()
+        raise
+    return db
+
+
+def load_registry(settings: Settings) -> ModelRegistry:
+    registry = ModelRegistry(
+        settings.model_dir,
+        threads=settings.onnx_threads,
+        chunk_size=settings.onnx_chunk,
+        default_model=settings.default_model,
+        asset_models=settings.asset_models,
+    )
+    registry.load()
+    return registry
+
+
+async def _retention_loop(app: FastAPI) -> None:
+    from service.db.readings import prune
+
+    settings: Settings = app.state.settings
+    while True:
+        cutoff = datetime.now(timezone.utc) - timedelta(days=settings.retention_days)
+        try:
+            removed = await asyncio.to_thread(_prune_once, app.state.db, cutoff, prune)
+            for table, n in removed.items():
+                if n:
+                    app.state.metrics.pruned_rows.inc(n, table=table)
+        except Exception as e:  # keep serving; the next round retries
+            log.warning("retention pruning failed: %s", e)
+        await asyncio.sleep(settings.retention_interval_s)
+
+
+def _prune_once(db: Database, cutoff: datetime, prune: Any) -> dict[str, int]:
+    with db.transaction() as session:
+        return prune(session, before=cutoff)
+
+
+class BodyLimit:
+    """413 for a request body over `max_bytes`, before anything parses it."""
+
+    def __init__(self, app: Any, max_bytes: int) -> None:
+        self.app, self.max_bytes = app, max_bytes
+
+    async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        message = f"request body over the {self.max_bytes}-byte limit: send smaller batches"
+        for name, value in scope.get("headers", []):
+            if name == b"content-length" and value.isdigit() and int(value) > self.max_bytes:
+                await error_response(413, "too_large", message)(scope, receive, send)
+                return
+        seen = 0
+        started = False
+
+        async def limited_receive() -> dict[str, Any]:
+            nonlocal seen
+            msg = await receive()
+            if msg["type"] == "http.request":
+                seen += len(msg.get("body", b""))
+                if seen > self.max_bytes:
+                    raise _BodyTooLarge
+            return msg
+
+        async def tracking_send(msg: dict[str, Any]) -> None:
+            nonlocal started
+            if msg["type"] == "http.response.start":
+                started = True
+            await send(msg)
+
+        try:
+            await self.app(scope, limited_receive, tracking_send)
+        except _BodyTooLarge:
+            if not started:
+                await error_response(413, "too_large", message)(scope, receive, send)
+
+
+class _BodyTooLarge(Exception):
+    pass
+
+
+class RequestMetrics:
+    """Counts requests by method, route template and status, and times them."""
+
+    def __init__(self, app: Any, metrics: Metrics) -> None:
+        self.app, self.metrics = app, metrics
+
+    async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        t0 = time.perf_counter()
+        status = {"code": 500}
+
+        async def send_status(msg: dict[str, Any]) -> None:
+            if msg["type"] == "http.response.start":
+                status["code"] = msg["status"]
+            await send(msg)
+
+        try:
+            await self.app(scope, receive, send_status)
+        finally:
+            route = scope.get("route")
+            path = getattr(route, "path", None) or "unmatched"
+            self.metrics.requests.inc(method=scope.get("method", ""), route=path, status=str(status["code"]))
+            self.metrics.request_seconds.observe(time.perf_counter() - t0)
+
+
+def _optional_module(name: str) -> Any | None:
+    try:
+        return importlib.import_module(name)
+    except ModuleNotFoundError as e:
+        if e.name is not None and (name == e.name or name.startswith(e.name + ".")):
+            return None  # that part of the service has not landed
+        raise
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or Settings()
+    metrics = Metrics()
+
+    @contextlib.asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        db = open_database(settings)
+        try:
+            app.state.registry = load_registry(settings)
+        except Exception:
+            db.dispose()
+            raise
+        app.state.db = db
+        app.state.started_at = datetime.now(timezone.utc)
+        task = asyncio.create_task(_retention_loop(app)) if settings.retention_days > 0 else None
+        try:
+            yield
+        finally:
+            if task is not None:
+                task.cancel()
+                with contextlib.suppress(asyncio.CancelledError):
+                    await task
+            db.dispose()
+
+    app = FastAPI(
+        title="echowatch",
+        version="1",
+        summary="Scores equipment sensor readings against a learned normal and raises calibrated alerts. Advisory only.",
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    app.state.metrics = metrics
+    install_error_handlers(app)
+
+    for name in API_ROUTER_MODULES:
+        module = _optional_module(name)
+        if module is not None:
+            app.include_router(module.router)
+    web = _optional_module(WEB_ROUTER_MODULE)
+    if web is not None:
+        app.include_router(web.router)
+        if STATIC_DIR.is_dir():
+            app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
+
+    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(RequestMetrics, metrics=metrics)
+    return app
+
+
+def app_from_env() -> FastAPI:
+    """Factory for `uvicorn --factory` / `serve --workers N`: settings from the environment."""
+    return create_app(Settings())

@@ -1,0 +1,70 @@
+"""API keys: created once (only the SHA-256 of the key is stored) and looked up by hash.
+
+Keys are `ew_` + secrets.token_urlsafe(32) (256 random bits), so a plain SHA-256 is an
+adequate stored form: there is nothing to brute-force from the hash.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import re
+import secrets
+from datetime import datetime, timezone
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from service.db.models import ROLES, ApiKey, AuditLog
+
+KEY_PREFIX = "ew_"
+ASSET_ID_RE = re.compile(r"^[A-Za-z0-9_.\-]{1,64}$")
+
+
+def hash_key(key: str) -> str:
+    return hashlib.sha256(key.encode("utf-8")).hexdigest()
+
+
+def create_key(
+    session: Session, *, name: str, role: str, assets: list[str] | None = None, actor: str = "cli"
+) -> tuple[str, ApiKey]:
+    """Store a new key's hash and return (the key itself, its row). Raises ValueError on bad input."""
+    if role not in ROLES:
+        raise ValueError(f"role {role!r} is not one of {', '.join(ROLES)}")
+    name = name.strip()
+    if not (1 <= len(name) <= 64):
+        raise ValueError("name must be 1 to 64 characters")
+    if assets is not None:
+        if role != "machine":
+            raise ValueError("only machine keys can be limited to assets (--assets)")
+        if not assets:
+            raise ValueError("--assets needs at least one asset id")
+        for a in assets:
+            if not ASSET_ID_RE.match(a):
+                raise ValueError(f"asset id {a!r} is not 1-64 characters of A-Z a-z 0-9 _ . -")
+    key = KEY_PREFIX + secrets.token_urlsafe(32)
+    row = ApiKey(name=name, role=role, assets=sorted(set(assets)) if assets else None, key_hash=hash_key(key), prefix=key[:10])
+    session.add(row)
+    session.flush()
+    session.add(AuditLog(actor=actor, action="key.create", target=f"api_key:{row.id}", details={"name": name, "role": role, "assets": row.assets, "prefix": row.prefix}))
+    return key, row
+
+
+def find_key(session: Session, *, key: str) -> ApiKey | None:
+    """The unrevoked key row for this key, or None."""
+    digest = hash_key(key)
+    row = session.scalars(select(ApiKey).where(ApiKey.key_hash == digest)).first()
+    if row is None or row.revoked_at is not None:
+        return None
+    if not hmac.compare_digest(row.key_hash, digest):
+        return None
+    return row
+
+
+def revoke_key(session: Session, *, key_id: int, actor: str) -> bool:
+    row = session.get(ApiKey, key_id)
+    if row is None or row.revoked_at is not None:
+        return False
+    row.revoked_at = datetime.now(timezone.utc)
+    session.add(AuditLog(actor=actor, action="key.revoke", target=f"api_key:{key_id}", details={"name": row.name}))
+    return True

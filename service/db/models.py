@@ -1,0 +1,235 @@
+"""The database schema (SQLAlchemy 2, typed). Portable SQL only: SQLite now, PostgreSQL
+through the URL alone. Timestamps are timezone-aware UTC datetimes; where ordering or
+uniqueness matters an integer epoch-milliseconds column sits beside them.
+
+Changes go through an Alembic migration in service/db/migrations/versions/.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+from typing import Any
+
+from sqlalchemy import (
+    JSON,
+    BigInteger,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    MetaData,
+    String,
+    Text,
+    UniqueConstraint,
+)
+from sqlalchemy.engine import Dialect
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+from sqlalchemy.types import TypeDecorator
+
+# Names for constraints so migrations are reproducible on every engine.
+NAMING = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+ROLES = ("machine", "maintenance", "operator", "admin")
+SEVERITIES = ("warning", "critical")
+ALERT_STATES = ("unacknowledged", "acknowledged", "closed")
+CONDITIONS = ("active", "returned")
+OUTCOMES = ("confirmed_fault", "false_alarm", "planned_work", "unknown")
+EVENT_KINDS = ("opened", "escalated", "returned", "acknowledged", "note", "closed")
+THRESHOLD_ORIGINS = ("calibrated", "manual", "budget", "rollback")
+
+# SQLite has no 64-bit autoincrement primary key; INTEGER PRIMARY KEY is already 64-bit there.
+BigId = BigInteger().with_variant(Integer(), "sqlite")
+
+
+def utcnow() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+class UtcDateTime(TypeDecorator[datetime]):
+    """A timezone-aware UTC datetime on every engine (SQLite stores it naive; we re-attach UTC)."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect: Dialect) -> datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError(f"naive datetime {value!r}: every timestamp must be timezone-aware UTC")
+        value = value.astimezone(timezone.utc)
+        return value.replace(tzinfo=None) if dialect.name == "sqlite" else value
+
+    def process_result_value(self, value: datetime | None, dialect: Dialect) -> datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=timezone.utc) if value.tzinfo is None else value.astimezone(timezone.utc)
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING)
+    type_annotation_map = {datetime: UtcDateTime(), dict[str, Any]: JSON(), list[Any]: JSON()}
+
+
+class ApiKey(Base):
+    __tablename__ = "api_keys"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(64))
+    role: Mapped[str] = mapped_column(String(16))
+    assets: Mapped[list[Any] | None] = mapped_column(JSON, default=None)  # None = every asset
+    key_hash: Mapped[str] = mapped_column(String(64), unique=True)  # sha256 hex of the key
+    prefix: Mapped[str] = mapped_column(String(16))  # first characters, for display
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    revoked_at: Mapped[datetime | None] = mapped_column(default=None)
+
+
+class Asset(Base):
+    __tablename__ = "assets"
+
+    asset_id: Mapped[str] = mapped_column(String(64), primary_key=True)
+    model_id: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    last_reading_at: Mapped[datetime | None] = mapped_column(default=None)  # newest reading's time
+    last_window_end_ms: Mapped[int | None] = mapped_column(BigInteger, default=None)  # newest window the rule saw
+    last_score: Mapped[float | None] = mapped_column(Float, default=None)
+    shelved_until: Mapped[datetime | None] = mapped_column(default=None)
+    shelve_reason: Mapped[str | None] = mapped_column(Text, default=None)
+    shelved_by: Mapped[str | None] = mapped_column(String(64), default=None)
+    rule_override: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)  # on_k/on_n/off_m/deadband_frac
+
+
+class Reading(Base):
+    __tablename__ = "readings"
+    __table_args__ = (
+        UniqueConstraint("asset_id", "ts_ms"),
+        Index("ix_readings_asset_ts", "asset_id", "ts_ms"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    asset_id: Mapped[str] = mapped_column(String(64), ForeignKey("assets.asset_id"))
+    ts_ms: Mapped[int] = mapped_column(BigInteger)  # epoch milliseconds, UTC
+    values: Mapped[dict[str, Any]] = mapped_column(JSON)  # {channel: float | None}
+    received_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class WindowScore(Base):
+    __tablename__ = "window_scores"
+    __table_args__ = (
+        UniqueConstraint("asset_id", "model_id", "model_version", "window_end_index"),
+        Index("ix_window_scores_asset_end", "asset_id", "window_end_ms"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    asset_id: Mapped[str] = mapped_column(String(64), ForeignKey("assets.asset_id"))
+    model_id: Mapped[str] = mapped_column(String(64))
+    model_version: Mapped[str] = mapped_column(String(64))
+    window_end_index: Mapped[int] = mapped_column(BigInteger)  # grid index (epoch s / period)
+    window_end_ms: Mapped[int] = mapped_column(BigInteger)
+    score: Mapped[float] = mapped_column(Float)
+    contributions: Mapped[dict[str, Any]] = mapped_column(JSON)  # {channel: share}, shares sum to 1
+    threshold_version_id: Mapped[int | None] = mapped_column(ForeignKey("threshold_versions.id"), default=None)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class SkippedWindow(Base):
+    """A window that held readings but spanned a gap longer than the fill policy allows."""
+
+    __tablename__ = "skipped_windows"
+    __table_args__ = (
+        UniqueConstraint("asset_id", "model_id", "model_version", "window_end_index"),
+        Index("ix_skipped_windows_asset_end", "asset_id", "window_end_ms"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    asset_id: Mapped[str] = mapped_column(String(64), ForeignKey("assets.asset_id"))
+    model_id: Mapped[str] = mapped_column(String(64))
+    model_version: Mapped[str] = mapped_column(String(64))
+    window_end_index: Mapped[int] = mapped_column(BigInteger)
+    window_end_ms: Mapped[int] = mapped_column(BigInteger)
+    reason: Mapped[str] = mapped_column(String(16), default="gap")
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class ThresholdVersion(Base):
+    __tablename__ = "threshold_versions"
+    __table_args__ = (UniqueConstraint("asset_id", "version"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    asset_id: Mapped[str] = mapped_column(String(64), ForeignKey("assets.asset_id"))
+    version: Mapped[int] = mapped_column(Integer)
+    warning: Mapped[float] = mapped_column(Float)
+    critical: Mapped[float] = mapped_column(Float)
+    on_k: Mapped[int] = mapped_column(Integer)
+    on_n: Mapped[int] = mapped_column(Integer)
+    off_m: Mapped[int] = mapped_column(Integer)
+    deadband_frac: Mapped[float] = mapped_column(Float)
+    origin: Mapped[str] = mapped_column(String(16))  # calibrated | manual | budget | rollback
+    budget_per_week: Mapped[float | None] = mapped_column(Float, default=None)
+    reason: Mapped[str] = mapped_column(Text, default="")
+    created_by: Mapped[str] = mapped_column(String(128))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    model_id: Mapped[str] = mapped_column(String(64))
+    model_version: Mapped[str] = mapped_column(String(64))
+
+
+class Alert(Base):
+    __tablename__ = "alerts"
+    __table_args__ = (
+        Index("ix_alerts_opened_id", "opened_at", "id"),
+        Index("ix_alerts_asset_opened", "asset_id", "opened_at"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    asset_id: Mapped[str] = mapped_column(String(64), ForeignKey("assets.asset_id"))
+    severity: Mapped[str] = mapped_column(String(16))  # warning | critical
+    state: Mapped[str] = mapped_column(String(16), default="unacknowledged")
+    condition: Mapped[str] = mapped_column(String(16), default="active")  # active | returned
+    # = asset_id while the rule holds this alert open; NULL afterwards. UNIQUE: one per asset.
+    active_key: Mapped[str | None] = mapped_column(String(64), unique=True, default=None)
+    opened_at: Mapped[datetime] = mapped_column()  # end of the window that opened it
+    last_seen_at: Mapped[datetime] = mapped_column()
+    returned_at: Mapped[datetime | None] = mapped_column(default=None)
+    peak_score: Mapped[float] = mapped_column(Float)
+    peak_at: Mapped[datetime] = mapped_column()
+    top_channels: Mapped[list[Any]] = mapped_column(JSON)  # [{"channel": str, "share": float}], at the peak
+    model_id: Mapped[str] = mapped_column(String(64))
+    model_version: Mapped[str] = mapped_column(String(64))
+    threshold_version_id: Mapped[int | None] = mapped_column(ForeignKey("threshold_versions.id"), default=None)
+    acknowledged_at: Mapped[datetime | None] = mapped_column(default=None)
+    acknowledged_by: Mapped[str | None] = mapped_column(String(128), default=None)
+    closed_at: Mapped[datetime | None] = mapped_column(default=None)
+    closed_by: Mapped[str | None] = mapped_column(String(128), default=None)
+    outcome: Mapped[str | None] = mapped_column(String(32), default=None)
+    close_note: Mapped[str | None] = mapped_column(Text, default=None)
+
+
+class AlertEvent(Base):
+    __tablename__ = "alert_events"
+    __table_args__ = (Index("ix_alert_events_alert_at", "alert_id", "at"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    alert_id: Mapped[int] = mapped_column(ForeignKey("alerts.id"))
+    at: Mapped[datetime] = mapped_column()
+    kind: Mapped[str] = mapped_column(String(16))  # opened | escalated | returned | acknowledged | note | closed
+    actor: Mapped[str] = mapped_column(String(128))
+    note: Mapped[str | None] = mapped_column(Text, default=None)
+    details: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)
+
+
+class AuditLog(Base):
+    __tablename__ = "audit_log"
+    __table_args__ = (Index("ix_audit_log_at", "at"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    at: Mapped[datetime] = mapped_column(default=utcnow)
+    actor: Mapped[str] = mapped_column(String(128))
+    action: Mapped[str] = mapped_column(String(64))
+    target: Mapped[str] = mapped_column(String(256))
+    details: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)

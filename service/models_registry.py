@@ -1,0 +1,177 @@
+"""The model registry: every model folder under the model directory
+(`<model_id>/<version>/manifest.json + model.onnx + calibration_scores.json`), loaded
+with OnnxScorer and validated before it serves.
+
+Validation of a folder: the manifest parses, ONNX Runtime loads the graph, its input and
+output names and shapes match the manifest, the file's sha256 matches the manifest, the
+calibration scores parse, and a test window gives finite outputs. The served version of
+a model id is its highest version (numeric parts compared as numbers). `reload()` builds
+and validates a complete new registry before switching; on any failure the old one keeps
+serving and the error says which folder failed and why.
+
+Assets are bound to a model id: `asset_models` setting, else the model whose training
+assets list the asset, else `default_model`, else the only model there is.
+"""
+
+from __future__ import annotations
+
+import re
+import threading
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+
+from service.errors import ModelError
+from service.manifest import MANIFEST_FILE, CalibrationScores, Manifest, load_calibration, load_manifest
+from service.scoring import OnnxScorer, ScoringError
+
+
+@dataclass(frozen=True)
+class LoadedModel:
+    model_id: str
+    version: str
+    path: Path
+    manifest: Manifest
+    scorer: OnnxScorer
+    calibration: CalibrationScores
+    loaded_at: datetime
+
+    @property
+    def channels(self) -> list[str]:
+        return self.manifest.channel_names
+
+
+@dataclass(frozen=True)
+class ReloadResult:
+    served: dict[str, str]  # model id -> version now served
+    changed: dict[str, tuple[str | None, str]] = field(default_factory=dict)  # id -> (old, new)
+
+
+def version_key(version: str) -> tuple[tuple[int, object], ...]:
+    """Sort key: '10' after '9', 'v2' after 'v1'; numbers before words at the same place."""
+    parts = re.findall(r"\d+|[^\d]+", version)
+    return tuple((0, int(p)) if p.isdigit() else (1, p) for p in parts)
+
+
+def validate_folder(path: Path, *, threads: int = 1, chunk_size: int = 64) -> LoadedModel:
+    """Load and validate one model folder; ModelError names the folder and the reason."""
+    try:
+        manifest = load_manifest(path)
+    except ValueError as e:
+        raise ModelError(str(e)) from e
+    if manifest.model_id != path.parent.name or manifest.version != path.name:
+        raise ModelError(
+            f"{path}: manifest says {manifest.model_id}/{manifest.version}; the folder must be "
+            f"<model_id>/<version> = {manifest.model_id}/{manifest.version}"
+        )
+    try:
+        scorer = OnnxScorer(path, threads=threads, chunk_size=chunk_size, manifest=manifest)
+        scorer.self_test()
+    except ScoringError as e:
+        raise ModelError(f"{path}: {e}") from e
+    except ValueError as e:
+        raise ModelError(f"{path}: {e}") from e
+    try:
+        calibration = load_calibration(path, manifest)
+    except ValueError as e:
+        raise ModelError(str(e)) from e
+    return LoadedModel(manifest.model_id, manifest.version, path, manifest, scorer, calibration, datetime.now(timezone.utc))
+
+
+def discover(model_dir: Path) -> dict[str, list[Path]]:
+    """model id -> its version folders (those holding a manifest), oldest first."""
+    model_dir = Path(model_dir)
+    if not model_dir.is_dir():
+        raise ModelError(f"{model_dir}: model directory does not exist (set ECHOWATCH_MODEL_DIR)")
+    found: dict[str, list[Path]] = {}
+    for model_path in sorted(p for p in model_dir.iterdir() if p.is_dir() and not p.name.startswith(".")):
+        versions = [v for v in model_path.iterdir() if v.is_dir() and (v / MANIFEST_FILE).is_file()]
+        if versions:
+            found[model_path.name] = sorted(versions, key=lambda v: version_key(v.name))
+    if not found:
+        raise ModelError(f"{model_dir}: no model folders (<model_id>/<version>/{MANIFEST_FILE}) found")
+    return found
+
+
+class ModelRegistry:
+    """Thread-safe view of the served models; swapped whole on reload."""
+
+    def __init__(
+        self,
+        model_dir: Path,
+        *,
+        threads: int = 1,
+        chunk_size: int = 64,
+        default_model: str | None = None,
+        asset_models: dict[str, str] | None = None,
+    ) -> None:
+        self.model_dir = Path(model_dir)
+        self.threads = threads
+        self.chunk_size = chunk_size
+        self.default_model = default_model
+        self.asset_models = dict(asset_models or {})
+        self._lock = threading.Lock()
+        self._served: dict[str, LoadedModel] = {}
+        self._available: dict[str, list[str]] = {}
+
+    def _build(self) -> tuple[dict[str, LoadedModel], dict[str, list[str]]]:
+        found = discover(self.model_dir)
+        served = {
+            model_id: validate_folder(paths[-1], threads=self.threads, chunk_size=self.chunk_size)
+            for model_id, paths in found.items()
+        }
+        for name, bound in [("default_model", self.default_model), *(
+            (f"asset_models[{a}]", m) for a, m in self.asset_models.items()
+        )]:
+            if bound is not None and bound not in served:
+                raise ModelError(f"setting {name} names model {bound!r}, but the model directory has {sorted(served)}")
+        return served, {m: [p.name for p in paths] for m, paths in found.items()}
+
+    def load(self) -> None:
+        """Load everything; ModelError (with the reason) if any served folder fails."""
+        served, available = self._build()
+        with self._lock:
+            self._served, self._available = served, available
+
+    def reload(self) -> ReloadResult:
+        """Validate the directory's current contents, then switch; on error keep serving the old set."""
+        served, available = self._build()
+        with self._lock:
+            old = self._served
+            self._served, self._available = served, available
+        changed = {m: (old[m].version if m in old else None, lm.version) for m, lm in served.items() if m not in old or old[m].version != lm.version}
+        return ReloadResult({m: lm.version for m, lm in served.items()}, changed)
+
+    @property
+    def loaded(self) -> bool:
+        return bool(self._served)
+
+    def models(self) -> list[LoadedModel]:
+        with self._lock:
+            return list(self._served.values())
+
+    def available_versions(self, model_id: str) -> list[str]:
+        with self._lock:
+            return list(self._available.get(model_id, []))
+
+    def get(self, model_id: str) -> LoadedModel:
+        with self._lock:
+            try:
+                return self._served[model_id]
+            except KeyError:
+                raise ModelError(f"model {model_id!r} is not loaded; the registry serves {sorted(self._served)}") from None
+
+    def model_for_asset(self, asset_id: str) -> str | None:
+        """The model id a new asset binds to, or None when the choice is ambiguous."""
+        with self._lock:
+            served = dict(self._served)
+        if asset_id in self.asset_models:
+            return self.asset_models[asset_id]
+        trained_on = [m for m, lm in served.items() if asset_id in lm.manifest.training.assets]
+        if len(trained_on) == 1:
+            return trained_on[0]
+        if self.default_model is not None:
+            return self.default_model
+        if len(served) == 1:
+            return next(iter(served))
+        return None

@@ -1,0 +1,51 @@
+"""Service settings: one `Settings` object, read from ECHOWATCH_* environment variables or a
+`.env` file (pydantic-settings). `create_app(settings)` takes it explicitly, so tests build
+their own and never edit the environment.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from pydantic import Field, field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+REPO_ROOT = Path(__file__).resolve().parents[1]
+BUNDLED_MODELS = REPO_ROOT / "models"
+
+
+class Settings(BaseSettings):
+    model_config = SettingsConfigDict(env_prefix="ECHOWATCH_", env_file=".env", extra="ignore")
+
+    # Storage. Any SQLAlchemy URL; PostgreSQL works through the URL alone.
+    database_url: str = "sqlite:///var/echowatch.db"
+    db_busy_timeout_ms: int = Field(default=5000, ge=0, description="SQLite busy timeout")
+    auto_upgrade: bool = Field(default=True, description="run Alembic upgrade to head on start")
+
+    # Models: a folder of <model_id>/<version>/ model folders.
+    model_dir: Path = BUNDLED_MODELS
+    default_model: str | None = Field(default=None, description="model id for new assets when several exist")
+    asset_models: dict[str, str] = Field(default_factory=dict, description="asset id -> model id bindings")
+    onnx_threads: int = Field(default=1, ge=1, description="ONNX Runtime intra-op threads per process")
+    onnx_chunk: int = Field(default=64, ge=1, description="windows per ONNX Runtime run")
+
+    # Request limits (see service/ingest.py for what each means).
+    max_body_bytes: int = Field(default=2_000_000, ge=1024, description="request body cap; larger is 413 before parsing")
+    max_batch_readings: int = Field(default=5000, ge=1, description="readings per post; more is 413")
+    max_score_windows: int = Field(default=512, ge=1, description="windows per POST /v1/score; more is 413")
+    future_tolerance_s: float = Field(default=300.0, ge=0, description="how far past the server clock a reading may lie")
+    lateness_windows: int = Field(
+        default=36, ge=0, description="windows ending more than this many window periods before the newest reading are not scored"
+    )
+    silent_after_windows: float = Field(default=3.0, gt=0, description="asset is silent after this many window periods without a reading")
+
+    # Retention: readings and window scores older than this are pruned in the background.
+    retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
+    retention_interval_s: float = Field(default=3600.0, gt=0)
+
+    @field_validator("database_url")
+    @classmethod
+    def _url(cls, v: str) -> str:
+        if "://" not in v:
+            raise ValueError("give an SQLAlchemy URL such as sqlite:///var/echowatch.db or postgresql+psycopg://...")
+        return v
