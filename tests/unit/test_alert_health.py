@@ -84,6 +84,8 @@ def test_health_report_figures_and_verdicts():
         rec(1, "p2", T0 - 2 * DAY_MS),  # stale, opened before the period
         rec(2, "p2", T0 + 5 * 3_600_000, T0 + 6 * 3_600_000, T0 + 7 * 3_600_000, "false_alarm"),
         rec(3, "p2", T0 + 8 * 3_600_000, T0 + 9 * 3_600_000, T0 + 10 * 3_600_000, "confirmed_fault"),
+        # Opened and returned days before, closed inside the period: judged with its own period.
+        rec(4, "p2", T0 - 3 * DAY_MS, T0 - 3 * DAY_MS + 3_600_000, T0 + 3_600_000, "false_alarm"),
     ]
     report = health(alerts, assets, since_ms=since, until_ms=until, window_period_s=300.0, on_k=3, off_m=6)
     fig = {f.name: f for f in report.figures}
@@ -98,6 +100,7 @@ def test_health_report_figures_and_verdicts():
     assert fig["chattering_assets"].value == 1 and fig["chattering_assets"].verdict == "above_target"
     assert fig["stale_alerts"].value == 1 and fig["stale_alerts"].detail["alert_ids"] == [1]
     assert fig["false_alarm_share"].value == pytest.approx(0.5)
+    assert fig["false_alarm_share"].detail == {"closed": 2, "false_alarms": 1}
     assert fig["false_alarm_share"].verdict == "within_target"
 
 

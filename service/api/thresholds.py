@@ -1,0 +1,241 @@
+"""Threshold and shelving routes: the settings in force, preview, new versions (by value,
+by false-alarm budget, timing only, or rollback), history, shelve and unshelve.
+
+Reading needs a maintenance key; preview, changes and shelving an operator key.
+
+Proposed rule from a body (preview and PUT alike): timing fields given override the
+timing in force; levels come from `warning` (and `critical`, else critical keeps the
+critical/warning ratio in force), or from `false_alarms_per_week` (warning from the
+model's calibration scores through service.thresholds.threshold_for_budget with the
+proposed timing, critical at the same ratio), or stay as they are.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime, timedelta, timezone
+from typing import Annotated
+
+from fastapi import APIRouter, Path
+
+from service.alerting import AlertRule
+from service.api.deps import DbSession, MaintenanceCaller, OperatorCaller, RegistryDep, WriteSession
+from service.api.schemas_alerts import (
+    BudgetOut,
+    PreviewIn,
+    PreviewOut,
+    ShelveIn,
+    ShelveOut,
+    StoredAlertCounts,
+    ThresholdHistory,
+    ThresholdOut,
+    ThresholdProposal,
+    ThresholdPut,
+    WouldOpenOut,
+    rule_out,
+    threshold_out,
+)
+from service.db import thresholds as q
+from service.db.alerts import from_ms, just_after
+from service.db.models import Asset, ThresholdVersion
+from service.errors import BadInput
+from service.models_registry import LoadedModel, ModelRegistry
+from service.retune import BudgetLevels, ProposedAlert, calibration_set, levels_for_budget, preview
+
+router = APIRouter(prefix="/v1/assets/{asset_id}", tags=["thresholds"])
+
+AssetId = Annotated[str, Path(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9_.\-]+$")]
+PREVIEW_DEFAULT = timedelta(days=30)
+PREVIEW_NOTE = (
+    "Replayed from a quiet rule state at the first stored window in the range, shelving not "
+    "replayed; expected false alarms per week come from the model's held-out normal calibration scores."
+)
+
+
+def _model(registry: ModelRegistry, asset: Asset) -> LoadedModel:
+    return registry.get(asset.model_id)
+
+
+def _in_force(db: DbSession, asset: Asset, model: LoadedModel) -> ThresholdVersion:
+    """The stored version in force, or (before the first is stored) version 1 as the manifest gives it."""
+    current = q.threshold_in_force(db, asset_id=asset.asset_id)
+    if current is not None:
+        return current
+    rule = q.manifest_rule(model.manifest)
+    return ThresholdVersion(
+        asset_id=asset.asset_id,
+        version=1,
+        warning=rule.warning,
+        critical=rule.critical,
+        on_k=rule.on_k,
+        on_n=rule.on_n,
+        off_m=rule.off_m,
+        deadband_frac=rule.deadband_frac,
+        origin="calibrated",
+        budget_per_week=model.manifest.thresholds.warning_budget_per_week,
+        reason=f"calibrated by the trainer ({model.manifest.thresholds.method})",
+        created_by=f"model {model.model_id}/{model.version}",
+        created_at=asset.created_at,
+        model_id=model.model_id,
+        model_version=model.version,
+    )
+
+
+@dataclass(frozen=True)
+class _Proposed:
+    rule: AlertRule
+    budget: BudgetLevels | None
+
+
+def _propose(body: ThresholdProposal, current: AlertRule, model: LoadedModel) -> _Proposed:
+    timing = {f: getattr(body, f) if getattr(body, f) is not None else getattr(current, f) for f in q.TIMING_FIELDS}
+    try:
+        base = AlertRule(warning=current.warning, critical=current.critical, **timing)
+    except ValueError as e:
+        raise BadInput(f"rule timing: {e}", field="body") from None
+    if body.false_alarms_per_week is not None:
+        try:
+            cal = calibration_set(model.calibration, model.manifest)
+            levels = levels_for_budget(cal, base, body.false_alarms_per_week)
+        except ValueError as e:
+            raise BadInput(f"cannot turn that budget into a threshold: {e}", field="body.false_alarms_per_week") from None
+        return _Proposed(base.with_thresholds(levels.warning, levels.critical), levels)
+    if body.warning is not None:
+        return _Proposed(base.with_thresholds(body.warning, body.critical), None)
+    return _Proposed(base, None)
+
+
+@router.get("/threshold", response_model=ThresholdOut)
+def get_threshold(asset_id: AssetId, db: DbSession, _caller: MaintenanceCaller, registry: RegistryDep) -> ThresholdOut:
+    asset = q.get_asset(db, asset_id=asset_id)
+    model = _model(registry, asset)
+    return threshold_out(_in_force(db, asset, model), model.manifest.window_period_s)
+
+
+@router.get("/threshold/history", response_model=ThresholdHistory)
+def threshold_history(asset_id: AssetId, db: DbSession, _caller: MaintenanceCaller, registry: RegistryDep) -> ThresholdHistory:
+    asset = q.get_asset(db, asset_id=asset_id)
+    model = _model(registry, asset)
+    versions = q.threshold_history(db, asset_id=asset_id) or [_in_force(db, asset, model)]
+    return ThresholdHistory(items=[threshold_out(v, model.manifest.window_period_s) for v in versions])
+
+
+def _would_open(alerts: list[ProposedAlert]) -> list[WouldOpenOut]:
+    return [
+        WouldOpenOut(
+            start=from_ms(a.start_ms), end=from_ms(a.end_ms), severity=a.severity, peak=a.peak, peak_at=from_ms(a.peak_at_ms), returned=a.returned
+        )
+        for a in alerts
+    ]
+
+
+@router.post("/threshold/preview", response_model=PreviewOut)
+def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller: OperatorCaller, registry: RegistryDep) -> PreviewOut:
+    asset = q.get_asset(db, asset_id=asset_id)
+    model = _model(registry, asset)
+    current = q.rule_of(_in_force(db, asset, model))
+    proposed = _propose(body, current, model)
+    until = body.until
+    if until is None:
+        # The asset's newest stored window (now, for a live asset; the replay's end for history).
+        until = just_after(asset.last_window_end_ms) if asset.last_window_end_ms is not None else datetime.now(timezone.utc)
+    since = body.since or until - PREVIEW_DEFAULT
+    if until <= since:
+        raise BadInput("until must be after since", field="body.until")
+    series = q.score_series(db, asset_id=asset_id, model_id=model.model_id, since=since, until=until)
+    past = q.past_alerts(db, asset_id=asset_id, since=since, until=until)
+    try:
+        cal = calibration_set(model.calibration, model.manifest)
+    except ValueError:
+        cal = None
+    result = preview(series, proposed.rule, current, past, cal)
+    counts = q.stored_counts(past)
+    budget = (
+        BudgetOut(
+            false_alarms_per_week=proposed.budget.choice.budget_per_week,
+            method=proposed.budget.choice.method,
+            detail={k: float(v) for k, v in proposed.budget.choice.detail.items()},
+        )
+        if proposed.budget is not None
+        else None
+    )
+    return PreviewOut(
+        asset_id=asset_id,
+        since=since,
+        until=until,
+        windows=result.windows,
+        rule=rule_out(proposed.rule),
+        current_rule=rule_out(current),
+        by_budget=budget,
+        alerts_would_open=_would_open(result.proposed),
+        would_open_count=len(result.proposed),
+        overlap_confirmed_fault=result.overlap_confirmed_fault,
+        overlap_false_alarm=result.overlap_false_alarm,
+        current_alerts=_would_open(result.current),
+        current_count=len(result.current),
+        stored_alerts=StoredAlertCounts(**counts.__dict__),
+        expected_false_alarms_per_week=result.expected_false_alarms_per_week,
+        current_expected_false_alarms_per_week=result.current_expected_false_alarms_per_week,
+        note=PREVIEW_NOTE,
+    )
+
+
+@router.put("/threshold", response_model=ThresholdOut)
+def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, caller: OperatorCaller, registry: RegistryDep) -> ThresholdOut:
+    asset = q.get_asset(db, asset_id=asset_id)
+    model = _model(registry, asset)
+    current = q.ensure_initial_version(db, asset=asset, manifest=model.manifest)
+    if body.rollback_to is not None:
+        row = q.rollback(db, asset=asset, to_version=body.rollback_to, reason=body.reason, actor=caller.name, manifest=model.manifest)
+    else:
+        changes = [f for f in ("warning", "false_alarms_per_week", *q.TIMING_FIELDS) if getattr(body, f) is not None]
+        if not changes:
+            raise BadInput(
+                "nothing to change: give warning (and optional critical), false_alarms_per_week, rule timing "
+                "(on_k, on_n, off_m, deadband_frac) or rollback_to",
+                field="body",
+            )
+        proposed = _propose(body, q.rule_of(current), model)
+        by_budget = proposed.budget is not None
+        row = q.set_threshold(
+            db,
+            asset=asset,
+            rule=proposed.rule,
+            origin="budget" if by_budget else "manual",
+            reason=body.reason,
+            actor=caller.name,
+            manifest=model.manifest,
+            budget_per_week=body.false_alarms_per_week,
+            details={"method": proposed.budget.choice.method} if proposed.budget is not None else None,
+        )
+    out = threshold_out(row, model.manifest.window_period_s)
+    db.commit()
+    return out
+
+
+def _shelve_out(asset: Asset) -> ShelveOut:
+    return ShelveOut(
+        asset_id=asset.asset_id,
+        shelved=q.is_shelved(asset),
+        shelved_until=asset.shelved_until,
+        shelve_reason=asset.shelve_reason,
+        shelved_by=asset.shelved_by,
+    )
+
+
+@router.post("/shelve", response_model=ShelveOut)
+def shelve(asset_id: AssetId, body: ShelveIn, db: WriteSession, caller: OperatorCaller) -> ShelveOut:
+    asset = q.get_asset(db, asset_id=asset_id)
+    q.shelve(db, asset=asset, until=body.until, reason=body.reason, actor=caller.name)
+    out = _shelve_out(asset)
+    db.commit()
+    return out
+
+
+@router.delete("/shelve", response_model=ShelveOut)
+def unshelve(asset_id: AssetId, db: WriteSession, caller: OperatorCaller) -> ShelveOut:
+    asset = q.get_asset(db, asset_id=asset_id)
+    q.unshelve(db, asset=asset, actor=caller.name)
+    out = _shelve_out(asset)
+    db.commit()
+    return out
