@@ -42,9 +42,13 @@ def parse_timestamp(value: object, default_tz: str | tzinfo | None = None) -> fl
         raise TimestampError(f"{value!r} is not a timestamp: give ISO-8601 with offset or epoch seconds")
     text = value.strip()
     try:
-        return float(text)
+        ts = float(text)
     except ValueError:
         pass
+    else:
+        if not np.isfinite(ts):  # float() also reads "nan" and "inf"
+            raise TimestampError(f"{value!r} is not a finite epoch-seconds value")
+        return ts
     try:
         dt = datetime.fromisoformat(text.replace("Z", "+00:00").replace("z", "+00:00"))
     except ValueError as e:
