@@ -1,0 +1,129 @@
+"""Request and response models of the readings, scoring and asset endpoints.
+
+Times come in as ISO-8601 with an offset or epoch seconds and go out as ISO-8601 UTC
+with "Z". Channel values are JSON numbers or null (missing); NaN and infinity are refused.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+from typing import Annotated, Any
+
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, PlainSerializer, WithJsonSchema
+from pydantic_core import PydanticCustomError
+
+from service.grid import TimestampError, parse_timestamp
+
+ASSET_ID_PATTERN = r"^[A-Za-z0-9_.\-]{1,64}$"
+
+
+def _parse_ts(value: object) -> float:
+    try:
+        return parse_timestamp(value)
+    except TimestampError as e:
+        raise PydanticCustomError("timestamp", str(e)) from e
+
+
+def _z(v: datetime) -> str:
+    return v.astimezone(timezone.utc).isoformat().replace("+00:00", "Z")
+
+
+EpochS = Annotated[
+    float,
+    BeforeValidator(_parse_ts),
+    WithJsonSchema({"anyOf": [{"type": "string", "format": "date-time"}, {"type": "number"}],
+                    "description": "ISO-8601 with offset, or epoch seconds"}),
+]
+Value = Annotated[float, Field(strict=True, allow_inf_nan=False)]
+UtcOut = Annotated[datetime, PlainSerializer(_z, return_type=str)]
+
+
+class _In(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class ReadingIn(_In):
+    ts: EpochS
+    values: dict[str, Value | None] = Field(description="every channel of the asset's model; null = not measured")
+
+
+class ReadingsIn(_In):
+    readings: list[ReadingIn]
+
+
+class ReadingsOut(BaseModel):
+    asset_id: str
+    model_id: str
+    model_version: str
+    accepted: int = Field(description="readings stored by this request")
+    duplicates: int = Field(description="readings already stored with the same values (or repeated in the batch)")
+    late: int = Field(description="stored readings older than the lateness limit: they start no window")
+    windows_scored: int
+    gap_windows: int = Field(description="windows not scored because they span a gap longer than the fill policy")
+    alerts_opened: int
+    alerts_escalated: int
+    alerts_returned: int
+    threshold_version: int | None
+    first_window_end: UtcOut | None
+    last_window_end: UtcOut | None
+
+
+class ScoreIn(_In):
+    model_id: str | None = Field(default=None, description="needed only when several models are served")
+    windows: list[list[list[Value]]] = Field(description="(batch, window, channels) in raw units, channel order of the manifest")
+
+
+class ScoreOut(BaseModel):
+    model_id: str
+    model_version: str
+    channels: list[str]
+    scores: list[float]
+    contributions: list[dict[str, float]]
+    warning: float
+    critical: float
+
+
+class AssetOut(BaseModel):
+    asset_id: str
+    model_id: str
+    state: str = Field(description="normal | alerting | shelved | silent")
+    created_at: UtcOut
+    last_reading_at: UtcOut | None
+    last_window_end: UtcOut | None
+    last_score: float | None
+    warning: float | None
+    critical: float | None
+    threshold_version: int | None
+    shelved_until: UtcOut | None
+    shelve_reason: str | None
+    active_alert_id: int | None
+    active_severity: str | None
+    gap_windows: int
+    last_gap_end: UtcOut | None
+
+
+class AssetsPage(BaseModel):
+    items: list[AssetOut]
+    next_cursor: str | None
+
+
+class ScorePointOut(BaseModel):
+    window_end: UtcOut
+    score: float
+    contributions: dict[str, float]
+    model_id: str
+    model_version: str
+    threshold_version_id: int | None
+
+
+class ScoresPage(BaseModel):
+    asset_id: str
+    since: UtcOut
+    until: UtcOut
+    items: list[ScorePointOut]
+    next_cursor: str | None
+
+
+def as_dict(obj: Any) -> dict[str, Any]:
+    """A dataclass's fields as a dict (for building response models)."""
+    return {k: getattr(obj, k) for k in obj.__dataclass_fields__}

@@ -1,0 +1,103 @@
+"""Fixtures for the HTTP tests: settings in a temporary folder, a real SQLite file, a
+real model folder (the bundled one, or the steerable tiny one), the app under TestClient
+with its lifespan, and one key per role."""
+
+from __future__ import annotations
+
+import sqlite3
+import sys
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import pytest
+from fastapi.testclient import TestClient
+
+sys.path.insert(0, str(Path(__file__).parent))
+
+import tiny_model  # noqa: E402
+
+from service.app import create_app  # noqa: E402
+from service.db.keys import create_key  # noqa: E402
+from service.db.session import Database  # noqa: E402
+from service.settings import BUNDLED_MODELS, Settings  # noqa: E402
+
+ROLES = ("machine", "maintenance", "operator", "admin")
+BUNDLED_ID = "booster-pumps"
+
+
+@dataclass
+class Env:
+    settings: Settings
+    client: TestClient
+    keys: dict[str, str]
+    db_path: Path
+
+    def auth(self, role: str) -> dict[str, str]:
+        return {"Authorization": f"Bearer {self.keys[role]}"}
+
+    def count(self, table: str, where: str = "", *params: Any) -> int:
+        with sqlite3.connect(self.db_path) as conn:
+            return conn.execute(f"SELECT COUNT(*) FROM {table} {('WHERE ' + where) if where else ''}", params).fetchone()[0]
+
+    def rows(self, sql: str, *params: Any) -> list[tuple[Any, ...]]:
+        with sqlite3.connect(self.db_path) as conn:
+            return conn.execute(sql, params).fetchall()
+
+    def add_key(self, role: str, name: str, assets: list[str] | None = None) -> str:
+        db = Database(self.settings.database_url)
+        try:
+            with db.transaction() as s:
+                key, _ = create_key(s, name=name, role=role, assets=assets)
+        finally:
+            db.dispose()
+        return key
+
+    def post(self, asset: str, readings: list[dict[str, Any]], role: str = "machine", key: str | None = None) -> Any:
+        headers = {"Authorization": f"Bearer {key}"} if key else self.auth(role)
+        return self.client.post(f"/v1/assets/{asset}/readings", json={"readings": readings}, headers=headers)
+
+
+def make_settings(tmp_path: Path, model_dir: Path, **overrides: Any) -> Settings:
+    return Settings(
+        _env_file=None,
+        database_url=f"sqlite:///{tmp_path / 'echowatch.db'}",
+        model_dir=model_dir,
+        retention_days=0,
+        **overrides,
+    )
+
+
+def start_env(tmp_path: Path, model_dir: Path, **overrides: Any) -> Iterator[Env]:
+    settings = make_settings(tmp_path, model_dir, **overrides)
+    app = create_app(settings)
+    with TestClient(app) as client:
+        env = Env(settings, client, {}, tmp_path / "echowatch.db")
+        env.keys = {role: env.add_key(role, f"test-{role}") for role in ROLES}
+        yield env
+
+
+def bundled_model_dir() -> Path:
+    if not (BUNDLED_MODELS / BUNDLED_ID).is_dir():
+        pytest.fail(f"the bundled model {BUNDLED_MODELS / BUNDLED_ID} is missing (make model)")
+    return BUNDLED_MODELS
+
+
+@pytest.fixture
+def tiny_dir(tmp_path: Path) -> Path:
+    root = tmp_path / "models"
+    tiny_model.build(root)
+    return root
+
+
+@pytest.fixture
+def env(tmp_path: Path, tiny_dir: Path) -> Iterator[Env]:
+    """The app on the steerable tiny model (window 6, stride 2, 60 s grid, fill 2 steps)."""
+    yield from start_env(tmp_path, tiny_dir)
+
+
+@pytest.fixture
+def bundled_env(tmp_path: Path) -> Iterator[Env]:
+    """The app on the bundled model."""
+    yield from start_env(tmp_path, bundled_model_dir())
