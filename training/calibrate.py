@@ -1,0 +1,206 @@
+"""Thresholds from held-out normal windows, chosen as false-alarm budgets.
+
+The calibration windows (the last, held-out stretch of every asset's normal data) are
+scored per asset in time order and replayed through the service's alert rule
+(service/alerting.py) by service.thresholds.threshold_for_budget: the warning level is the
+lowest one whose replay opens at most `warning_budget_per_week` alerts per asset-week,
+the critical level likewise with its own (rarer) budget. Where a budget is rarer than
+the calibration stretch can resolve, threshold_for_budget fits the score tail by peaks
+over threshold (Siffer et al. 2017) instead; which one was used is recorded per level.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Protocol
+
+import numpy as np
+import torch
+
+from service.alerting import AlertRule, count_alerts
+from service.manifest import (
+    AlertRuleDefaults,
+    CalibrationScores,
+    CalibrationSeries,
+    CalibrationSummary,
+    Thresholds,
+)
+from service.thresholds import CalibrationSet, ThresholdChoice, alerts_per_week, threshold_for_budget
+from training.config import CalibrationConfig, ModelConfig
+from training.model import Reconstructor, error_statistics
+
+QUANTILES = (0.5, 0.9, 0.99, 0.999)
+
+
+class IndexedWindows(Protocol):
+    """A WindowSet: windows by index, each with its asset and absolute grid end index."""
+
+    end_index: np.ndarray
+
+    def __len__(self) -> int: ...
+
+    def gather(self, idx: np.ndarray) -> np.ndarray: ...
+
+    def asset_of(self, idx: np.ndarray) -> np.ndarray: ...
+
+
+@torch.inference_mode()
+def model_outputs(model: Reconstructor, windows, idx: np.ndarray | None = None, batch: int = 512):  # type: ignore[no-untyped-def]
+    """Yield (idx_part, reconstruction, residual, score) numpy arrays batch by batch, eval mode."""
+    model.eval()
+    idx = np.arange(len(windows), dtype=np.int64) if idx is None else np.asarray(idx, dtype=np.int64)
+    for start in range(0, len(idx), batch):
+        part = idx[start : start + batch]
+        x = torch.from_numpy(np.ascontiguousarray(windows.gather(part), dtype=np.float32))
+        recon, resid, score = model(x)
+        yield part, recon.numpy(), resid.numpy(), score.numpy()
+
+
+def score_windows(model: Reconstructor, windows, idx: np.ndarray | None = None) -> np.ndarray:  # type: ignore[no-untyped-def]
+    """Window scores (float64) of `windows[idx]` (all when idx is None), by the model's score method."""
+    parts = [s for _, _, _, s in model_outputs(model, windows, idx)]
+    return np.concatenate(parts).astype(np.float64) if parts else np.empty(0)
+
+
+def fit_mahalanobis(model: Reconstructor, validation, config: ModelConfig, limit: int = 4000) -> int:  # type: ignore[no-untyped-def]
+    """Fit mu, Sigma of e = |z - z_hat| on normal validation windows into the model; returns steps used."""
+    from training.fit import even_subset
+
+    idx = even_subset(len(validation), limit)
+    errors = [np.sqrt(resid).reshape(-1, resid.shape[-1]) for _, _, resid, _ in model_outputs(model, validation, idx)]
+    stats = error_statistics(np.concatenate(errors), config.ridge)
+    model.set_mahalanobis(stats.mean, stats.precision)
+    return stats.steps
+
+
+@dataclass(frozen=True)
+class Calibration:
+    rule: AlertRule  # timing defaults with the chosen warning and critical levels
+    warning: ThresholdChoice
+    critical: ThresholdChoice
+    assets: list[str]
+    series: dict[str, tuple[np.ndarray, np.ndarray]]  # asset -> (window_end_index, score), time order
+    span_s: float
+    window_period_s: float
+
+    @property
+    def pooled(self) -> np.ndarray:
+        return np.concatenate([s for _, s in self.series.values()]) if self.series else np.empty(0)
+
+    @property
+    def calibration_set(self) -> CalibrationSet:
+        return CalibrationSet([s for _, s in self.series.values()], self.span_s, self.window_period_s)
+
+    @property
+    def method(self) -> str:
+        """'pot' when either level came from the tail fit, else 'empirical'."""
+        return "pot" if "pot" in (self.warning.method, self.critical.method) else "empirical"
+
+    def replayed_per_week(self, level: str = "warning") -> float:
+        """Alerts per asset-week the rule opens at the chosen warning (or critical) level."""
+        value = self.rule.warning if level == "warning" else self.rule.critical
+        return alerts_per_week(self.calibration_set, self.rule.with_thresholds(value, value))
+
+    def summary(self) -> CalibrationSummary:
+        pooled = self.pooled
+        return CalibrationSummary(
+            windows=int(len(pooled)),
+            assets=len(self.series),
+            span_s=float(self.span_s),
+            score_quantiles={str(q): float(np.quantile(pooled, q)) for q in QUANTILES} if len(pooled) else {},
+            max_score=float(pooled.max()) if len(pooled) else None,
+        )
+
+    def thresholds(self) -> Thresholds:
+        return Thresholds(
+            warning=float(self.rule.warning),
+            critical=float(self.rule.critical),
+            method=self.method,  # type: ignore[arg-type]
+            warning_budget_per_week=self.warning.budget_per_week,
+            critical_budget_per_week=self.critical.budget_per_week,
+            calibration=self.summary(),
+        )
+
+    def alert_rule_defaults(self) -> AlertRuleDefaults:
+        return AlertRuleDefaults(
+            on_k=self.rule.on_k, on_n=self.rule.on_n, off_m=self.rule.off_m, deadband_frac=self.rule.deadband_frac
+        )
+
+    def scores_file(self, model_id: str, version: str, sample_period_s: float, stride: int) -> CalibrationScores:
+        return CalibrationScores(
+            model_id=model_id,
+            version=version,
+            sample_period_s=sample_period_s,
+            stride=stride,
+            assets={
+                a: CalibrationSeries(window_end_index=[int(e) for e in ends], score=[float(s) for s in scores])
+                for a, (ends, scores) in self.series.items()
+            },
+        )
+
+    def false_alerts(self) -> dict[str, int]:
+        """Warning alerts the chosen rule opens on each asset's calibration scores."""
+        return {a: count_alerts(s, self.rule) for a, (_, s) in self.series.items()}
+
+
+def per_asset_series(
+    scores: np.ndarray, assets: np.ndarray, end_index: np.ndarray, names: Sequence[str] | None = None
+) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Split pooled window scores into per-asset (end_index, score) sequences in time order."""
+    assets = np.asarray(assets)
+    order_names = list(names) if names is not None else sorted({str(a) for a in assets})
+    out: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+    for name in order_names:
+        mask = assets == name
+        if not np.any(mask):
+            continue
+        ends = np.asarray(end_index)[mask]
+        order = np.argsort(ends, kind="stable")
+        out[str(name)] = (ends[order].astype(np.int64), np.asarray(scores)[mask][order].astype(np.float64))
+    return out
+
+
+def choose_thresholds(
+    series: dict[str, tuple[np.ndarray, np.ndarray]],
+    span_s: float,
+    window_period_s: float,
+    config: CalibrationConfig,
+) -> Calibration:
+    """Warning and critical levels for the configured budgets and alert timing."""
+    if not series:
+        raise ValueError("no calibration windows to choose thresholds from")
+    cal = CalibrationSet([s for _, s in series.values()], span_s, window_period_s)
+    timing = AlertRule(
+        warning=1.0, critical=1.0, on_k=config.on_k, on_n=config.on_n, off_m=config.off_m, deadband_frac=config.deadband_frac
+    )
+    warning = threshold_for_budget(cal, timing, config.warning_budget_per_week)
+    critical = threshold_for_budget(cal, timing, config.critical_budget_per_week)
+    crit_level = max(critical.threshold, warning.threshold)
+    rule = timing.with_thresholds(warning.threshold, crit_level)
+    return Calibration(
+        rule=rule,
+        warning=warning,
+        critical=critical,
+        assets=list(series),
+        series=series,
+        span_s=span_s,
+        window_period_s=window_period_s,
+    )
+
+
+def calibrate(
+    model: Reconstructor,
+    calibration: IndexedWindows,
+    span_s: float,
+    window_period_s: float,
+    config: CalibrationConfig,
+    asset_names: Sequence[str] | None = None,
+) -> Calibration:
+    """Score the calibration windows with the model and choose both thresholds."""
+    if len(calibration) == 0:
+        raise ValueError("no calibration windows: give more data or a larger calibration fraction")
+    idx = np.arange(len(calibration), dtype=np.int64)
+    scores = score_windows(model, calibration, idx)
+    series = per_asset_series(scores, calibration.asset_of(idx), np.asarray(calibration.end_index), asset_names)
+    return choose_thresholds(series, span_s, window_period_s, config)

@@ -1,0 +1,98 @@
+"""Typed settings of one training run: data cut, model shape, fit, calibration.
+
+Every default here was chosen by a measurement on the demo scenario; the measurement is
+written beside the setting (see also training/model.py's docstring). The whole run's
+settings travel into the manifest and the report, so a model folder describes itself.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from typing import Literal
+
+from service.manifest import Architecture, LayerSpec, MergeMode, ScoreMethod
+
+LossKind = Literal["mse", "huber"]
+
+
+@dataclass(frozen=True)
+class DataConfig:
+    period_s: float = 60.0  # sample grid period; the demo logs at 60 s
+    window: int = 60  # grid points per window: 60 x 60 s = one hour of context
+    stride: int = 10  # serving stride: a window ends every 10 min (validation/calibration too)
+    train_stride: int = 2  # denser cut for training; 5x the windows of the serving stride
+    max_fill_steps: int = 5  # forward-fill gaps up to 5 min; longer gaps break windows
+    margin_s: float = 3600.0  # excluded events are widened by this on both sides
+    fractions: tuple[float, float, float] = (0.70, 0.15, 0.15)  # train / validation / calibration, in time
+
+
+@dataclass(frozen=True)
+class ModelConfig:
+    hidden: int = 32  # LSTM state width of every encoder and decoder layer
+    layers: int = 1  # LSTM layers in the encoder and, mirrored, in the decoder
+    latent: int = 8  # bottleneck width: one vector per window
+    bidirectional: bool = True  # read the window both ways in every layer
+    merge: MergeMode = "concat"  # how a bidirectional layer combines its two directions per step
+    dropout: float = 0.0  # between stacked LSTM layers (only active with layers > 1)
+    score: ScoreMethod = "mean_squared"  # window score from the residual
+    ridge: float = 1e-3  # Mahalanobis: added to Sigma's diagonal, relative to its mean variance
+
+    def encoder_specs(self) -> list[LayerSpec]:
+        return [LayerSpec(hidden=self.hidden, bidirectional=self.bidirectional, merge=self.merge)] * self.layers
+
+    def decoder_specs(self) -> list[LayerSpec]:
+        return [LayerSpec(hidden=self.hidden, bidirectional=self.bidirectional, merge=self.merge)] * self.layers
+
+    def architecture(self, parameters: int, flops_per_window: int) -> Architecture:
+        return Architecture(
+            encoder=self.encoder_specs(),
+            latent=self.latent,
+            decoder=self.decoder_specs(),
+            dropout=self.dropout,
+            parameters=parameters,
+            flops_per_window=flops_per_window,
+        )
+
+
+@dataclass(frozen=True)
+class FitConfig:
+    epochs: int = 30  # upper bound; early stopping usually ends sooner
+    batch_size: int = 64  # windows per optimiser step
+    lr: float = 3e-3  # AdamW learning rate
+    weight_decay: float = 1e-4  # AdamW decoupled weight decay
+    clip_norm: float = 1.0  # gradient norm clip, guards the LSTM against rare exploding steps
+    patience: int = 4  # epochs without validation improvement before stopping (best weights restored)
+    min_delta: float = 1e-4  # relative improvement that counts as one
+    loss: LossKind = "mse"  # training loss in scaled units
+    huber_delta: float = 1.0  # only for loss="huber"
+    seed: int = 7  # torch, numpy and batch order: same seed, same model
+    threads: int = 2  # torch.set_num_threads; the machines here have 2 cores
+    max_train_windows: int | None = None  # per epoch, a fixed-seed subsample (None = all)
+    max_validation_windows: int = 4000  # validation loss on a fixed subset (all when fewer)
+
+
+@dataclass(frozen=True)
+class CalibrationConfig:
+    warning_budget_per_week: float = 0.25  # false warnings per asset-week: about one a month
+    critical_budget_per_week: float = 0.05  # false criticals per asset-week: about one in five months
+    # Alert timing (service/alerting.py). With 10-min windows: open when 3 of the last 5
+    # windows (50 min) are high, so one noisy window never alerts but a fault that lasts
+    # half an hour does; return after 6 windows (1 h) below 90 % of the level, so an
+    # alert hovering at the threshold does not chatter.
+    on_k: int = 3
+    on_n: int = 5
+    off_m: int = 6
+    deadband_frac: float = 0.1
+
+
+@dataclass(frozen=True)
+class TrainConfig:
+    data: DataConfig = field(default_factory=DataConfig)
+    model: ModelConfig = field(default_factory=ModelConfig)
+    fit: FitConfig = field(default_factory=FitConfig)
+    calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
+    model_id: str = "booster-pumps"
+    version: str | None = None  # None: a UTC stamp such as 20261201T190300Z
+
+    def as_dict(self) -> dict:
+        return asdict(self)

@@ -1,0 +1,215 @@
+"""The LSTM sequence reconstructor: raw readings in, reconstruction, residual and score out.
+
+    readings (B, W, C) raw units
+      -> scaled z = (x - centre) / scale                    (buffers, inside the graph)
+      -> encoder: stacked LSTM layers (uni/bidirectional, directions merged per step)
+      -> many-to-one summary: the last layer's final states, merged        (B, E)
+      -> Linear to the latent vector (the information bottleneck)         (B, L)
+      -> repeated over the window                                         (B, W, L)
+      -> decoder: stacked LSTM layers, many-to-many                       (B, W, D)
+      -> per-step Linear head, one output per channel: z_hat              (B, W, C)
+      -> reconstruction = z_hat * scale + centre (raw), residual = (z - z_hat)^2 (scaled)
+      -> score (B,): mean_squared or mahalanobis (ScoreSpec in service/manifest.py)
+
+The exported ONNX graph is exactly this forward pass (DESIGN.md "The model contract").
+
+Defaults (training/config.py) were chosen by measurement on the demo scenario (6 pumps,
+42 days, seed 7, events excluded from training; test = the labelled fault windows vs the
+normal calibration windows, ROC-AUC of the window score); see the numbers in
+`DEFAULTS_MEASUREMENT` below, which bench/training.py and the report repeat.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+from torch import nn
+
+from service.manifest import LayerSpec, MergeMode, ScoreSpec
+from training.config import ModelConfig
+
+DEFAULTS_MEASUREMENT = """\
+Measured on the default demo data, hidden/latent sweep with window 60, stride 10,
+train_stride 2 (ROC-AUC of labelled fault windows vs normal calibration windows,
+score mean_squared; ONNX size): see training/bundle.py's docstring for the table.
+"""
+
+
+def merge_directions(forward: torch.Tensor, backward: torch.Tensor, mode: MergeMode) -> torch.Tensor:
+    """Combine the two directions' outputs step by step (last axis is the feature axis)."""
+    if mode == "concat":
+        return torch.cat([forward, backward], dim=-1)  # (..., 2H)
+    if mode == "sum":
+        return forward + backward  # (..., H)
+    if mode == "multiply":
+        return forward * backward  # (..., H)
+    if mode == "average":
+        return 0.5 * (forward + backward)  # (..., H)
+    raise ValueError(f"unknown merge mode {mode!r}: use concat, sum, multiply or average")
+
+
+def merged_width(spec: LayerSpec) -> int:
+    return 2 * spec.hidden if spec.bidirectional and spec.merge == "concat" else spec.hidden
+
+
+class LSTMLayer(nn.Module):
+    """One LSTM layer, uni- or bidirectional; a bidirectional layer merges its directions per step."""
+
+    def __init__(self, input_size: int, spec: LayerSpec) -> None:
+        super().__init__()
+        self.spec = spec
+        self.lstm = nn.LSTM(input_size, spec.hidden, batch_first=True, bidirectional=spec.bidirectional)
+        self.out_size = merged_width(spec)
+
+    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """x (B, T, I) -> per-step outputs (B, T, O) and the final summary (B, O)."""
+        y, (h, _) = self.lstm(x)  # y (B, T, D*H), h (D, B, H)
+        if not self.spec.bidirectional:
+            return y, h[0]
+        hid = self.spec.hidden
+        steps = merge_directions(y[..., :hid], y[..., hid:], self.spec.merge)  # (B, T, O)
+        # h[0]: forward direction after the last step; h[1]: backward direction after the first.
+        summary = merge_directions(h[0], h[1], self.spec.merge)  # (B, O)
+        return steps, summary
+
+
+class LSTMStack(nn.Module):
+    def __init__(self, input_size: int, specs: list[LayerSpec], dropout: float) -> None:
+        super().__init__()
+        layers = []
+        size = input_size
+        for spec in specs:
+            layers.append(LSTMLayer(size, spec))
+            size = layers[-1].out_size
+        self.layers = nn.ModuleList(layers)
+        self.dropout = nn.Dropout(dropout)
+        self.out_size = size
+
+    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """x (B, T, I) -> last layer's steps (B, T, O) and summary (B, O)."""
+        summary = x[:, -1]
+        for i, layer in enumerate(self.layers):
+            if i > 0:
+                x = self.dropout(x)
+            x, summary = layer(x)
+        return x, summary
+
+
+class Reconstructor(nn.Module):
+    """Raw readings (B, W, C) -> (reconstruction raw, residual scaled^2, score (B,))."""
+
+    def __init__(
+        self,
+        config: ModelConfig,
+        n_channels: int,
+        window: int,
+        center: np.ndarray,
+        scale: np.ndarray,
+    ) -> None:
+        super().__init__()
+        center = np.asarray(center, dtype=np.float32).reshape(-1)
+        scale = np.asarray(scale, dtype=np.float32).reshape(-1)
+        if center.shape != (n_channels,) or scale.shape != (n_channels,):
+            raise ValueError(f"scaler needs {n_channels} centre and scale values, got {center.shape}, {scale.shape}")
+        if not np.all(scale > 0):
+            raise ValueError("every scaler scale must be > 0")
+        self.config = config
+        self.n_channels = n_channels
+        self.window = window
+        self.register_buffer("center", torch.from_numpy(center.copy()))
+        self.register_buffer("scale", torch.from_numpy(scale.copy()))
+        self.encoder = LSTMStack(n_channels, config.encoder_specs(), config.dropout)
+        self.to_latent = nn.Linear(self.encoder.out_size, config.latent)
+        self.decoder = LSTMStack(config.latent, config.decoder_specs(), config.dropout)
+        self.head = nn.Linear(self.decoder.out_size, n_channels)
+        self.score_method = config.score
+        self.register_buffer("error_mean", torch.zeros(n_channels))
+        self.register_buffer("error_precision", torch.eye(n_channels))
+
+    def reconstruct_scaled(self, readings: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """readings (B, W, C) raw -> (z, z_hat), both (B, W, C) in scaled units."""
+        z = (readings - self.center) / self.scale  # (B, W, C)
+        _, summary = self.encoder(z)  # (B, E)
+        latent = self.to_latent(summary)  # (B, L)
+        repeated = latent.unsqueeze(1).repeat(1, self.window, 1)  # (B, W, L)
+        steps, _ = self.decoder(repeated)  # (B, W, D)
+        z_hat = self.head(steps)  # (B, W, C)
+        return z, z_hat
+
+    def forward(self, readings: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        z, z_hat = self.reconstruct_scaled(readings)
+        reconstruction = z_hat * self.scale + self.center  # (B, W, C) raw units
+        diff = z - z_hat  # (B, W, C)
+        residual = diff * diff  # (B, W, C) squared error, scaled units
+        if self.score_method == "mahalanobis":
+            d = torch.abs(diff) - self.error_mean  # (B, W, C): e_t - mu
+            per_step = (torch.matmul(d, self.error_precision) * d).sum(dim=-1)  # (B, W)
+            score = per_step.mean(dim=1)  # (B,)
+        else:
+            score = residual.mean(dim=(1, 2))  # (B,)
+        return reconstruction, residual, score
+
+    def set_mahalanobis(self, error_mean: np.ndarray, error_precision: np.ndarray) -> None:
+        self.error_mean.copy_(torch.as_tensor(error_mean, dtype=torch.float32))
+        self.error_precision.copy_(torch.as_tensor(error_precision, dtype=torch.float32))
+        self.score_method = "mahalanobis"
+
+    def score_spec(self) -> ScoreSpec:
+        if self.score_method == "mahalanobis":
+            return ScoreSpec(
+                method="mahalanobis",
+                error_mean=[float(v) for v in self.error_mean.tolist()],
+                error_precision=[[float(v) for v in row] for row in self.error_precision.tolist()],
+            )
+        return ScoreSpec(method="mean_squared")
+
+    @property
+    def parameters_count(self) -> int:
+        return sum(p.numel() for p in self.parameters())
+
+
+def lstm_stack_flops(input_size: int, specs: list[LayerSpec], steps: int) -> tuple[int, int]:
+    """(FLOPs, output width) of a stack over `steps` steps: 2 x gate multiply-adds per direction."""
+    flops = 0
+    size = input_size
+    for spec in specs:
+        directions = 2 if spec.bidirectional else 1
+        # Four gates, each W_ih x + W_hh h: 4H(I + H) multiply-adds per step and direction.
+        flops += 2 * directions * steps * 4 * spec.hidden * (size + spec.hidden)
+        size = merged_width(spec)
+    return flops, size
+
+
+def flops_per_window(config: ModelConfig, n_channels: int, window: int) -> int:
+    """Matmul FLOPs (2 x multiply-adds) of one window's forward pass; element-wise ops not counted."""
+    enc, enc_out = lstm_stack_flops(n_channels, config.encoder_specs(), window)
+    dec, dec_out = lstm_stack_flops(config.latent, config.decoder_specs(), window)
+    latent = 2 * enc_out * config.latent
+    head = 2 * window * dec_out * n_channels
+    score = 2 * window * n_channels * n_channels if config.score == "mahalanobis" else 0
+    return int(enc + dec + latent + head + score)
+
+
+@dataclass(frozen=True)
+class ErrorStatistics:
+    """Mean and regularised precision of per-step error vectors e = |z - z_hat| (scaled units)."""
+
+    mean: np.ndarray  # (C,)
+    covariance: np.ndarray  # (C, C), ridge included
+    precision: np.ndarray  # (C, C)
+    steps: int  # error vectors the fit saw
+
+
+def error_statistics(errors: np.ndarray, ridge: float) -> ErrorStatistics:
+    """Fit mu and Sigma on error vectors (N, C) (Malhotra et al. 2016), Sigma + ridge*mean(var)*I."""
+    e = np.asarray(errors, dtype=np.float64)
+    if e.ndim != 2 or len(e) < 2:
+        raise ValueError(f"need at least two error vectors of shape (N, C), got {e.shape}")
+    mu = e.mean(axis=0)
+    cov = np.cov(e, rowvar=False).reshape(e.shape[1], e.shape[1])
+    cov = cov + ridge * max(float(np.mean(np.diag(cov))), 1e-12) * np.eye(e.shape[1])
+    precision = np.linalg.inv(cov)
+    precision = 0.5 * (precision + precision.T)
+    return ErrorStatistics(mean=mu, covariance=cov, precision=precision, steps=len(e))
