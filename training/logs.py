@@ -197,8 +197,17 @@ def _read_table(path: Path, src: _Source) -> pa.Table:
     except pa.ArrowException as e:
         raise src.error(f"cannot read as CSV: {e}") from e
     if bad_rows:
-        raise src.error(bad_rows[0])
+        raise src.error(_first_ragged_line(path, len(header)) or bad_rows[0])
     return table
+
+
+def _first_ragged_line(path: Path, n_fields: int) -> str | None:
+    """The first line whose field count differs from the header's (the threaded reader may not know it)."""
+    with open(path, newline="", encoding="utf-8") as fh:
+        for number, row in enumerate(csv.reader(fh), start=1):
+            if number > 1 and len(row) != n_fields:
+                return f"line {number} has {len(row)} fields, the header has {n_fields}"
+    return None
 
 
 def _as_strings(col: pa.ChunkedArray) -> pa.ChunkedArray:
@@ -231,7 +240,7 @@ def _parse_numbers(col: pa.ChunkedArray, src: _Source, column: str) -> np.ndarra
     inf = np.isinf(out)
     if inf.any():
         i = _first_true(inf)
-        raise src.error(f"{src.at(i)}, column {column!r}: {out[i]!r} is not a finite number")
+        raise src.error(f"{src.at(i)}, column {column!r}: {float(out[i])!r} is not a finite number")
     return out
 
 
@@ -275,7 +284,7 @@ def _parse_times(col: pa.ChunkedArray, src: _Source, tz: str | None) -> np.ndarr
         bad = ~np.isfinite(out)
         if bad.any():
             i = _first_true(bad)
-            raise src.error(f"{src.at(i)}, column {TIME_COLUMN!r}: {out[i]!r} is not a finite epoch-seconds value")
+            raise src.error(f"{src.at(i)}, column {TIME_COLUMN!r}: {float(out[i])!r} is not a finite epoch-seconds value")
         return out
     if not (pa.types.is_string(t) or pa.types.is_large_string(t)):
         raise src.error(f"column {TIME_COLUMN!r} has type {t}: give ISO-8601 text with offset or epoch seconds")
@@ -318,7 +327,7 @@ def _parse_times(col: pa.ChunkedArray, src: _Source, tz: str | None) -> np.ndarr
 
 def _asset_codes(col: pa.ChunkedArray, src: _Source) -> tuple[np.ndarray, list[str]]:
     s = _as_strings(col)
-    missing = pc.or_(pc.is_null(s), pc.equal(s, "")).to_numpy(zero_copy_only=False)
+    missing = pc.fill_null(pc.equal(s, ""), True).to_numpy(zero_copy_only=False)
     if missing.any():
         i = _first_true(missing)
         raise src.error(f"{src.at(i)}, column {ASSET_COLUMN!r}: missing asset id")
@@ -413,7 +422,7 @@ def read_logs(
                 f"unknown column(s) {', '.join(map(repr, extra))} in the long layout: expected timestamp,asset,channel,value[,unit]"
             )
         ch_col = _as_strings(table.column("channel"))
-        ch_missing = pc.or_(pc.is_null(ch_col), pc.equal(ch_col, "")).to_numpy(zero_copy_only=False)
+        ch_missing = pc.fill_null(pc.equal(ch_col, ""), True).to_numpy(zero_copy_only=False)
         if ch_missing.any():
             raise src.error(f"{src.at(_first_true(ch_missing))}, column 'channel': missing channel name")
         enc = pc.dictionary_encode(ch_col).combine_chunks()
@@ -484,7 +493,8 @@ def _place(src: _Source, number: int) -> str:
 
 
 def _iso(ts_s: float) -> str:
-    return str(np.datetime_as_string(np.datetime64(int(round(ts_s * 1e6)), "us"), unit="auto", timezone="UTC"))
+    us = int(round(ts_s * 1e6))
+    return str(np.datetime_as_string(np.datetime64(us, "us"), unit="s" if us % 1_000_000 == 0 else "us", timezone="UTC"))
 
 
 def _pivot_long(
