@@ -116,6 +116,11 @@ class ArrayWindows(np.ndarray):
     def asset_of(self, idx: np.ndarray | int) -> np.ndarray:
         return self.asset_ids[idx]
 
+    def subset(self, idx: np.ndarray | Sequence[int]) -> ArrayWindows:
+        """Windows `idx` with their asset ids and end indexes (plain slicing keeps the full metadata)."""
+        idx = np.asarray(idx, dtype=np.int64)
+        return ArrayWindows(np.asarray(self)[idx], self.asset_ids[idx], self.end_index[idx])
+
 
 @dataclass
 class Prepared:
