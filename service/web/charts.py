@@ -284,7 +284,8 @@ def score_chart(
     t0, t1 = t_range if t_range else (min(t_ms), max(t_ms))
     if highlight:
         t0, t1 = min(t0, highlight.start_ms), max(t1, highlight.end_ms)
-    frame = _Frame(left=58, top=12, width=width - 58 - 92, height=height - 12 - plot_bottom_pad, t0=t0, t1=t1, y0=y0, y1=y1, log=use_log)
+    left = 84.0 if lanes else 58.0
+    frame = _Frame(left=left, top=12, width=width - left - 92, height=height - 12 - plot_bottom_pad, t0=t0, t1=t1, y0=y0, y1=y1, log=use_log)
 
     peak_i = max(range(len(scores)), key=lambda i: scores[i] if scores[i] is not None and math.isfinite(scores[i]) else -math.inf) if finite else None
     desc = (
@@ -436,7 +437,7 @@ def readings_chart(
             parts.append(
                 f'<rect class="span span-{escape(highlight.kind)}" x="{x0:.1f}" y="{frame.top}" width="{max(x1 - x0, 2):.1f}" height="{frame.height:.1f}"/>'
             )
-        _value_axis(frame, parts, nice_ticks(frame.y0, frame.y1, 3))
+        _value_axis(frame, parts, nice_ticks(frame.y0, frame.y1, 4))
         _time_axis(frame, parts, labels=(i == len(traces) - 1))
         for pts in _polylines(frame, tr.t_ms, tr.values, (_typical_step(tr.t_ms) or 0) * 3 or None):
             parts.append(f'<polyline class="reading-line reading-line-{i}" points="{pts}"/>')
