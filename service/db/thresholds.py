@@ -5,8 +5,8 @@ the highest version is in force. Version 1 comes from the manifest when the asse
 seen (`ensure_initial_version`); later versions are made by operators (origin manual or
 budget) or by rolling back (origin rollback: a copy of an old version under a new number).
 Each new version and each shelve/unshelve writes an audit_log row. Versions are never
-edited or deleted. The asset's `rule_override` mirrors the timing of the version in force
-where it differs from the model's defaults, for readers that look only at the asset row.
+edited or deleted. Rule timing set here lives in the version itself (not in the asset's
+`rule_override`), so the version in force says everything the rule uses.
 
 Callers commit; these functions add and flush.
 """
@@ -130,9 +130,6 @@ def _add_version(
         raise Conflict(
             f"asset {asset.asset_id!r}: another change made version {row.version} at the same moment; fetch the threshold and retry"
         ) from None
-    defaults = manifest.alert_rule
-    override = {f: getattr(rule, f) for f in TIMING_FIELDS if getattr(rule, f) != getattr(defaults, f)}
-    asset.rule_override = override or None
     if audit:
         session.add(
             AuditLog(
