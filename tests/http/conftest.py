@@ -4,7 +4,7 @@ with its lifespan, and one key per role."""
 
 from __future__ import annotations
 
-import sqlite3
+import os
 import sys
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -18,9 +18,16 @@ sys.path.insert(0, str(Path(__file__).parent))
 
 import tiny_model  # noqa: E402
 
+sys.path.insert(0, str(Path(__file__).parents[1]))
+import pg_server  # noqa: E402
+
+# Set (e.g. by `make test`) to run this suite a second time on a real PostgreSQL server:
+# each test gets a fresh schema of that database instead of an SQLite file.
+TEST_DATABASE_URL = os.environ.get("ECHOWATCH_TEST_DATABASE_URL")
+
 from service.app import create_app  # noqa: E402
 from service.db.keys import create_key  # noqa: E402
-from service.db.session import Database  # noqa: E402
+from service.db.session import Database, make_engine  # noqa: E402
 from service.settings import BUNDLED_MODELS, Settings  # noqa: E402
 
 ROLES = ("machine", "maintenance", "operator", "admin")
@@ -38,12 +45,18 @@ class Env:
         return {"Authorization": f"Bearer {self.keys[role]}"}
 
     def count(self, table: str, where: str = "", *params: Any) -> int:
-        with sqlite3.connect(self.db_path) as conn:
-            return conn.execute(f"SELECT COUNT(*) FROM {table} {('WHERE ' + where) if where else ''}", params).fetchone()[0]
+        return self.rows(f"SELECT COUNT(*) FROM {table} {('WHERE ' + where) if where else ''}", *params)[0][0]
 
     def rows(self, sql: str, *params: Any) -> list[tuple[Any, ...]]:
-        with sqlite3.connect(self.db_path) as conn:
-            return conn.execute(sql, params).fetchall()
+        """Raw SQL with `?` placeholders, on whichever engine the test runs."""
+        engine = make_engine(self.settings.database_url)
+        try:
+            with engine.connect() as conn:
+                if engine.dialect.name != "sqlite":
+                    sql = sql.replace("%", "%%").replace("?", "%s")
+                return [tuple(r) for r in conn.exec_driver_sql(sql, tuple(params)).fetchall()]
+        finally:
+            engine.dispose()
 
     def add_key(self, role: str, name: str, assets: list[str] | None = None) -> str:
         db = Database(self.settings.database_url)
@@ -62,7 +75,7 @@ class Env:
 def make_settings(tmp_path: Path, model_dir: Path, **overrides: Any) -> Settings:
     return Settings(
         _env_file=None,
-        database_url=f"sqlite:///{tmp_path / 'echowatch.db'}",
+        database_url=pg_server.schema_url(TEST_DATABASE_URL, str(tmp_path)) if TEST_DATABASE_URL else f"sqlite:///{tmp_path / 'echowatch.db'}",
         model_dir=model_dir,
         retention_days=0,
         **overrides,
@@ -72,10 +85,14 @@ def make_settings(tmp_path: Path, model_dir: Path, **overrides: Any) -> Settings
 def start_env(tmp_path: Path, model_dir: Path, **overrides: Any) -> Iterator[Env]:
     settings = make_settings(tmp_path, model_dir, **overrides)
     app = create_app(settings)
-    with TestClient(app) as client:
-        env = Env(settings, client, {}, tmp_path / "echowatch.db")
-        env.keys = {role: env.add_key(role, f"test-{role}") for role in ROLES}
-        yield env
+    try:
+        with TestClient(app) as client:
+            env = Env(settings, client, {}, tmp_path / "echowatch.db")
+            env.keys = {role: env.add_key(role, f"test-{role}") for role in ROLES}
+            yield env
+    finally:
+        if TEST_DATABASE_URL:
+            pg_server.drop_schema(settings.database_url)
 
 
 def bundled_model_dir() -> Path:
