@@ -22,12 +22,24 @@ system-deps:
 	  elif command -v sudo >/dev/null; then sudo apt-get update -qq && sudo DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null; \
 	  else echo "chromium missing and no root: browser tests will be skipped" >&2; fi; \
 	fi
+	@if ! ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1; then \
+	  if [ "$$(id -u)" = 0 ]; then apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq postgresql >/dev/null; \
+	  elif command -v sudo >/dev/null; then sudo apt-get update -qq && sudo DEBIAN_FRONTEND=noninteractive apt-get install -y -qq postgresql >/dev/null; \
+	  else echo "postgresql missing and no root: the PostgreSQL run of tests/http will be skipped" >&2; fi; \
+	fi
 
 demo: install
 	$(BIN)/echowatch demo
 
+# The second run: tests/http again on a private PostgreSQL server on 127.0.0.1 (tests/pg_server.py).
 test: install system-deps
 	$(BIN)/python -m pytest -q -p no:cacheprovider
+	@if ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1; then \
+	  url="$$($(BIN)/python tests/pg_server.py start --fresh)" || exit 1; \
+	  echo "tests/http on PostgreSQL ($$url)"; \
+	  ECHOWATCH_TEST_DATABASE_URL="$$url" $(BIN)/python -m pytest -q -p no:cacheprovider tests/http; rc=$$?; \
+	  $(BIN)/python tests/pg_server.py stop; exit $$rc; \
+	else echo "postgresql missing: skipped the PostgreSQL run of tests/http" >&2; fi
 
 test-fast: install
 	$(BIN)/python -m pytest -q -p no:cacheprovider tests/unit tests/http
