@@ -222,6 +222,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
 
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    from service.api.ratelimit import FailedAuthLimit
+
+    app.add_middleware(FailedAuthLimit, max_failures=settings.auth_fail_limit, window_s=settings.auth_fail_window_s)
     app.add_middleware(RequestMetrics, metrics=metrics)
     return app
 

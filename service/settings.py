@@ -39,6 +39,10 @@ class Settings(BaseSettings):
     )
     silent_after_windows: float = Field(default=3.0, gt=0, description="asset is silent after this many window periods without a reading")
 
+    # Failed authentication: this many 401s from one client address within the window make it 429 (service/api/ratelimit.py).
+    auth_fail_limit: int = Field(default=20, ge=0, description="401s per client address per window before 429; 0 turns it off")
+    auth_fail_window_s: float = Field(default=60.0, gt=0)
+
     # Retention: readings and window scores older than this are pruned in the background.
     retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
     retention_interval_s: float = Field(default=3600.0, gt=0)
