@@ -253,19 +253,29 @@ def health_records(session: Session, *, since: datetime, until: datetime) -> lis
 
 
 def asset_spans(session: Session, *, until: datetime) -> list[AssetSpan]:
-    """Assets and when each was first watched: its first stored window, or its creation,
-    whichever is earlier (replayed history predates the row's creation time)."""
+    """Assets and when each was first watched: the earliest of its first stored window, its
+    first alert and its creation (replayed history predates the row's creation time)."""
     first_window = dict(
         session.execute(select(WindowScore.asset_id, func.min(WindowScore.window_end_ms)).group_by(WindowScore.asset_id)).all()
     )
+    first_alert = dict(session.execute(select(Alert.asset_id, func.min(Alert.opened_at)).group_by(Alert.asset_id)).all())
     out = []
     for asset in session.scalars(select(Asset).order_by(Asset.asset_id)):
         since = to_ms(asset.created_at)
         if first_window.get(asset.asset_id) is not None:
             since = min(since, int(first_window[asset.asset_id]))
+        if first_alert.get(asset.asset_id) is not None:
+            since = min(since, to_ms(_aware(first_alert[asset.asset_id])))
         if since < to_ms(until):
             out.append(AssetSpan(asset.asset_id, since))
     return out
+
+
+def _aware(t: datetime) -> datetime:
+    # func.min() bypasses the column type on SQLite, so the UTC zone is re-attached here.
+    if isinstance(t, str):
+        t = datetime.fromisoformat(t)
+    return t if t.tzinfo is not None else t.replace(tzinfo=timezone.utc)
 
 
 def just_after(ms: int) -> datetime:
