@@ -182,20 +182,35 @@ def _read_table(path: Path, src: _Source) -> pa.Table:
         bad_rows.append(f"{where} has {row.actual_columns} fields, the header has {row.expected_columns}")
         return "skip"
 
-    try:
-        table = pacsv.read_csv(
+    def read(types: dict[str, pa.DataType]) -> pa.Table:
+        return pacsv.read_csv(
             path,
             read_options=pacsv.ReadOptions(column_names=header, skip_rows=1, use_threads=True),
             parse_options=pacsv.ParseOptions(invalid_row_handler=on_invalid, ignore_empty_lines=False),
             convert_options=pacsv.ConvertOptions(
-                column_types={h: pa.string() for h in header},
+                column_types=types,
                 null_values=list(NULL_TOKENS),
                 strings_can_be_null=True,
                 quoted_strings_can_be_null=True,
             ),
         )
+
+    # Numbers straight to float64 and ids dictionary-encoded keeps a big file's memory near
+    # its arrays; if any field will not convert, read everything as text so the checks
+    # below can name the line and column.
+    labels = (ASSET_COLUMN, "channel", "unit")
+    typed = {h: pa.string() if h == TIME_COLUMN else pa.dictionary(pa.int32(), pa.string()) if h in labels else pa.float64() for h in header}
+    try:
+        try:
+            table = read(typed)
+        except pa.ArrowInvalid:
+            if bad_rows:
+                raise
+            bad_rows.clear()
+            table = read({h: pa.string() for h in header})
     except pa.ArrowException as e:
-        raise src.error(f"cannot read as CSV: {e}") from e
+        if not bad_rows:
+            raise src.error(f"cannot read as CSV: {e}") from e
     if bad_rows:
         raise src.error(_first_ragged_line(path, len(header)) or bad_rows[0])
     return table
@@ -299,7 +314,7 @@ def _parse_times(col: pa.ChunkedArray, src: _Source, tz: str | None) -> np.ndarr
             return
         idx = np.flatnonzero(mask)
         try:
-            out[idx] = parse(s.take(pa.array(idx)))
+            out[idx] = parse(s if len(idx) == n else s.take(pa.array(idx)))  # usually one shape for all rows
         except pa.ArrowInvalid:
             return  # e.g. 2026-02-30: left to the exact per-value path for its message
         done[idx] = True
@@ -325,14 +340,30 @@ def _parse_times(col: pa.ChunkedArray, src: _Source, tz: str | None) -> np.ndarr
     return out
 
 
+def _label_codes(col: pa.ChunkedArray, src: _Source, column: str, what: str) -> tuple[np.ndarray, list[str]]:
+    """Integer codes (0..K-1) and the distinct labels of a text column, in order of first appearance."""
+    if not pa.types.is_dictionary(col.type):
+        col = pc.dictionary_encode(_as_strings(col))
+    names: list[str] = []
+    index: dict[str, int] = {}
+    parts = []
+    for chunk in col.chunks:
+        local = [str(v).strip() if v is not None else "" for v in chunk.dictionary.to_pylist()]
+        to_global = np.array([index.setdefault(v, len(index)) if v else -1 for v in local] + [-1], dtype=np.int64)
+        idx = pc.fill_null(chunk.indices, len(local)).to_numpy(zero_copy_only=False).astype(np.int64)
+        parts.append(to_global[idx])
+    codes = np.concatenate(parts) if parts else np.empty(0, dtype=np.int64)
+    if np.any(codes < 0):
+        raise src.error(f"{src.at(_first_true(codes < 0))}, column {column!r}: missing {what}")
+    names = [""] * len(index)
+    for v, k in index.items():
+        names[k] = v
+    # Renumber by first appearance in the file (chunk dictionaries come in block order already).
+    return codes, names
+
+
 def _asset_codes(col: pa.ChunkedArray, src: _Source) -> tuple[np.ndarray, list[str]]:
-    s = _as_strings(col)
-    missing = pc.fill_null(pc.equal(s, ""), True).to_numpy(zero_copy_only=False)
-    if missing.any():
-        i = _first_true(missing)
-        raise src.error(f"{src.at(i)}, column {ASSET_COLUMN!r}: missing asset id")
-    enc = pc.dictionary_encode(s).combine_chunks()
-    return enc.indices.to_numpy(zero_copy_only=False).astype(np.int64), enc.dictionary.to_pylist()
+    return _label_codes(col, src, ASSET_COLUMN, "asset id")
 
 
 def _resolve_units(
@@ -421,17 +452,11 @@ def read_logs(
             raise src.error(
                 f"unknown column(s) {', '.join(map(repr, extra))} in the long layout: expected timestamp,asset,channel,value[,unit]"
             )
-        ch_col = _as_strings(table.column("channel"))
-        ch_missing = pc.fill_null(pc.equal(ch_col, ""), True).to_numpy(zero_copy_only=False)
-        if ch_missing.any():
-            raise src.error(f"{src.at(_first_true(ch_missing))}, column 'channel': missing channel name")
-        enc = pc.dictionary_encode(ch_col).combine_chunks()
-        ch_codes = enc.indices.to_numpy(zero_copy_only=False).astype(np.int64)
-        file_channels = enc.dictionary.to_pylist()  # order of first appearance
+        ch_codes, file_channels = _label_codes(table.column("channel"), src, "channel", "channel name")
         _check_channels(src, file_channels, channels, "rows")
         value = _parse_numbers(table.column("value"), src, "value")
         if "unit" in names:
-            unit_col = _as_strings(table.column("unit")).to_numpy(zero_copy_only=False)
+            unit_col = _as_strings(table.column("unit").cast(pa.string())).to_numpy(zero_copy_only=False)
             for k, ch in enumerate(file_channels):
                 seen = {u for u in unit_col[ch_codes == k].tolist() if u}
                 if len(seen) > 1:
@@ -451,29 +476,34 @@ def read_logs(
             )
         _check_channels(src, file_channels, channels, "column(s)")
         out_channels = list(channels) if channels is not None else file_channels
+        # One sort by (asset, time) for the whole file; each asset's arrays are then slices.
+        order = np.lexsort((times, codes))
+        sorted_codes = codes[order]
+        times, line_no = times[order], line_no[order]
         wide = np.empty((n_rows, len(out_channels)))
         for ch in file_channels:
-            wide[:, out_channels.index(ch)] = _parse_numbers(table.column(ch), src, ch)
+            wide[:, out_channels.index(ch)] = _parse_numbers(table.column(ch), src, ch)[order]
+        del order
+    del table
 
     unit_map = _resolve_units(src, out_channels, file_units, units)
     assets: dict[str, AssetLog] = {}
     for a_code in np.argsort(np.array(asset_names, dtype=object)).tolist():
         name = asset_names[a_code]
-        rows = np.flatnonzero(codes == a_code)
         if long:
+            rows = np.flatnonzero(codes == a_code)
             log = _pivot_long(src, name, times[rows], col_of[rows], value[rows], line_no[rows], out_channels)
         else:
-            order = np.argsort(times[rows], kind="stable")
-            rows = rows[order]
-            t = times[rows]
+            lo, hi = np.searchsorted(sorted_codes, [a_code, a_code + 1])
+            t, lines = times[lo:hi], line_no[lo:hi]
             dup = np.flatnonzero(np.diff(t) == 0)
             if len(dup):
                 j = int(dup[0])
                 raise src.error(
-                    f"asset {name!r}: duplicate timestamp {_iso(t[j])} at {_place(src, line_no[rows[j]])} "
-                    f"and {_place(src, line_no[rows[j + 1]])}; keep one reading per asset and time"
+                    f"asset {name!r}: duplicate timestamp {_iso(t[j])} at {_place(src, lines[j])} "
+                    f"and {_place(src, lines[j + 1])}; keep one reading per asset and time"
                 )
-            log = AssetLog(name, t, wide[rows], line_no[rows])
+            log = AssetLog(name, t, wide[lo:hi], lines)
         _check_asset_channels(src, log, out_channels)
         assets[name] = log
     _check_constant(src, assets, out_channels)
