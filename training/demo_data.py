@@ -427,8 +427,10 @@ def _plan_faults(assets: Sequence[str], start_s: float, days: float, seed: int) 
         else:
             step = (head_hi - head_lo) / (n - 1)
             segments = [(head_lo + i * step, head_lo + (i + 1) * step) for i in range(n - 1)] + [(end_s - tail, end_s)]
-        for j, (seg_lo, seg_hi) in enumerate(segments):
-            for attempt in range(200):
+        for j, segment in enumerate(segments):
+            # Try the intended stretch first; a short or crowded run falls back to the whole period.
+            for attempt in range(400):
+                seg_lo, seg_hi = segment if attempt < 200 else (start_s, end_s)
                 dur = 60.0 * round(rng.uniform(lo_min, hi_min))
                 dur = min(dur, 0.4 * days * DAY_S, max(seg_hi - seg_lo, 3600.0))
                 latest = min(seg_hi, end_s) - dur
