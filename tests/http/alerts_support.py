@@ -7,6 +7,8 @@ query modules the service uses.
 
 from __future__ import annotations
 
+import os
+import sys
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -23,6 +25,9 @@ from service.db.keys import create_key
 from service.db.models import Alert, Asset, WindowScore
 from service.db.thresholds import ensure_initial_version
 from service.settings import BUNDLED_MODELS, Settings
+
+sys.path.insert(0, str(Path(__file__).parents[1]))
+import pg_server  # noqa: E402
 
 MODEL_ID = "booster-pumps"
 ROLES = ("machine", "maintenance", "operator", "admin")
@@ -53,20 +58,29 @@ class Service:
 
 @contextmanager
 def running(tmp_path: Path, model_dir: Path | None = None) -> Iterator[Service]:
+    """The app on an SQLite file in `tmp_path` (or, when ECHOWATCH_TEST_DATABASE_URL is set as
+    for the rest of tests/http, a fresh PostgreSQL schema), with one key per role."""
+    test_db = os.environ.get("ECHOWATCH_TEST_DATABASE_URL")
+    url = pg_server.schema_url(test_db, str(tmp_path)) if test_db else f"sqlite:///{tmp_path / 'echowatch.db'}"
     settings = Settings(
-        database_url=f"sqlite:///{tmp_path / 'echowatch.db'}",
+        _env_file=None,
+        database_url=url,
         model_dir=model_dir or bundled_model_dir(),
         retention_days=0,
-        _env_file=None,
+        auth_fail_limit=0,  # the failed-auth limit has its own tests
     )
     app = create_app(settings)
-    with TestClient(app) as client:
-        keys, names = {}, {}
-        with app.state.db.transaction() as s:
-            for role in ROLES:
-                names[role] = f"{role}-tester"
-                keys[role], _ = create_key(s, name=names[role], role=role)
-        yield Service(app, client, keys, names)
+    try:
+        with TestClient(app) as client:
+            keys, names = {}, {}
+            with app.state.db.transaction() as s:
+                for role in ROLES:
+                    names[role] = f"{role}-tester"
+                    keys[role], _ = create_key(s, name=names[role], role=role)
+            yield Service(app, client, keys, names)
+    finally:
+        if test_db:
+            pg_server.drop_schema(url)
 
 
 def add_asset(svc: Service, asset_id: str, model_id: str = MODEL_ID) -> None:
