@@ -344,8 +344,7 @@ def _label_codes(col: pa.ChunkedArray, src: _Source, column: str, what: str) -> 
     """Integer codes (0..K-1) and the distinct labels of a text column, in order of first appearance."""
     if not pa.types.is_dictionary(col.type):
         col = pc.dictionary_encode(_as_strings(col))
-    names: list[str] = []
-    index: dict[str, int] = {}
+    index: dict[str, int] = {}  # label -> code, filled in block order, so codes follow first appearance
     parts = []
     for chunk in col.chunks:
         local = [str(v).strip() if v is not None else "" for v in chunk.dictionary.to_pylist()]
@@ -355,11 +354,7 @@ def _label_codes(col: pa.ChunkedArray, src: _Source, column: str, what: str) -> 
     codes = np.concatenate(parts) if parts else np.empty(0, dtype=np.int64)
     if np.any(codes < 0):
         raise src.error(f"{src.at(_first_true(codes < 0))}, column {column!r}: missing {what}")
-    names = [""] * len(index)
-    for v, k in index.items():
-        names[k] = v
-    # Renumber by first appearance in the file (chunk dictionaries come in block order already).
-    return codes, names
+    return codes, list(index)
 
 
 def _asset_codes(col: pa.ChunkedArray, src: _Source) -> tuple[np.ndarray, list[str]]:
