@@ -45,6 +45,7 @@ test-fast: install
 	$(BIN)/python -m pytest -q -p no:cacheprovider tests/unit tests/http
 
 bench: install
+	$(BIN)/python bench/memory.py
 	$(BIN)/python bench/scoring.py
 	$(BIN)/python bench/training.py
 	$(BIN)/python bench/ingest.py
