@@ -261,6 +261,15 @@ def alert_rows(url: str, asset: str) -> list[tuple[Any, ...]]:
     return query(url, "SELECT id, opened_at, returned_at, active_key FROM alerts WHERE asset_id = :a ORDER BY opened_at, id", a=asset)
 
 
+def tiny_score(window: list[dict[str, float]]) -> float:
+    """The tiny model's score, computed directly: mean squared scaled distance from the centre."""
+    total = 0.0
+    for values in window:
+        for ch, ctr, sc in zip(tiny_model.CHANNELS, tiny_model.CENTER, tiny_model.SCALE):
+            total += ((values[ch] - ctr) / sc) ** 2
+    return total / (len(window) * len(tiny_model.CHANNELS))
+
+
 def reference_alerts(url: str, asset: str) -> int:
     """How many alerts the alert rule opens over the asset's stored scores, replayed from scratch."""
     return count_alerts([s for _, s in scores_in_order(url, asset)], RULE)
