@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from pydantic import Field, field_validator
+from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 REPO_ROOT = Path(__file__).resolve().parents[1]
@@ -38,6 +38,10 @@ class Settings(BaseSettings):
         default=36, ge=0, description="windows ending more than this many window periods before the newest reading are not scored"
     )
     silent_after_windows: float = Field(default=3.0, gt=0, description="asset is silent after this many window periods without a reading")
+
+    # Dashboard sessions (service/web/session.py): the key that signs session cookies. Give
+    # every replica the same value; unset, one is kept in a file beside an SQLite database.
+    session_secret: SecretStr | None = Field(default=None, description="signs dashboard session cookies (at least 16 characters)")
 
     # Failed authentication: this many 401s from one client address within the window make it 429 (service/api/ratelimit.py).
     auth_fail_limit: int = Field(default=20, ge=0, description="401s per client address per window before 429; 0 turns it off")
