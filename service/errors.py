@@ -88,6 +88,20 @@ def field_path(loc: Sequence[str | int]) -> str:
     return out
 
 
+_HINTS = {
+    "finite_number": "NaN and infinity are refused; send null for a value that was not measured",
+    "float_type": "send a JSON number, or null for a value that was not measured",
+    "extra_forbidden": "this field is not part of the request",
+}
+
+
+def _plain(error: dict[str, Any]) -> str:
+    """Pydantic's message with a hint of what would be accepted."""
+    msg = str(error.get("msg", "invalid value"))
+    hint = _HINTS.get(str(error.get("type", "")))
+    return f"{msg} ({hint})" if hint else msg
+
+
 def error_response(status: int, code: str, message: str, field: str | None = None, **extra: Any) -> JSONResponse:
     err: dict[str, Any] = {"code": code, "message": message}
     if field is not None:
@@ -108,7 +122,7 @@ def install_error_handlers(app: FastAPI) -> None:
         errors = exc.errors()
         first = errors[0] if errors else {"loc": (), "msg": "invalid request"}
         path = field_path(first.get("loc", ()))
-        msg = str(first.get("msg", "invalid value"))
+        msg = _plain(first)
         more = [{"field": field_path(e.get("loc", ())), "message": str(e.get("msg", ""))} for e in errors[1:20]]
         message = f"{path}: {msg}" if path else msg
         extra = {"details": {"more": more}} if more else {}

@@ -56,6 +56,7 @@ from service.db import readings as q
 from service.db import rule_alerts
 from service.db.models import Asset, SkippedWindow, ThresholdVersion, WindowScore
 from service.db.session import Database
+from service.db.thresholds import ensure_initial_version
 from service.errors import BadInput, Conflict, Forbidden, TooLarge
 from service.manifest import Manifest
 from service.metrics import Metrics
@@ -319,11 +320,12 @@ def _ingest_tx(
 
     asset = q.get_asset(session, asset_id=asset_id)
     if asset is None:
-        asset = q.create_asset(session, asset_id=asset_id, model_id=model.model_id, model_version=model.version, rule=manifest_rule(m))
-    threshold = q.latest_threshold(session, asset_id=asset_id)
-    if threshold is None or threshold.model_id != model.model_id or threshold.model_version != model.version:
+        asset = q.create_asset(session, asset_id=asset_id, model_id=model.model_id)
+    threshold = ensure_initial_version(session, asset=asset, manifest=m)
+    if threshold.model_id != model.model_id or threshold.model_version != model.version:
         threshold = q.add_threshold_version(
             session, asset_id=asset_id, rule=manifest_rule(m), origin="calibrated",
+            budget_per_week=m.thresholds.warning_budget_per_week,
             reason=f"model changed to {model.model_id}/{model.version}", created_by=f"model {model.model_id}/{model.version}",
             model_id=model.model_id, model_version=model.version,
         )

@@ -38,24 +38,12 @@ def get_asset(session: Session, *, asset_id: str) -> Asset | None:
     return session.get(Asset, asset_id)
 
 
-def create_asset(session: Session, *, asset_id: str, model_id: str, model_version: str, rule: dict[str, float]) -> Asset:
-    """A new asset bound to `model_id`, with threshold version 1 from the model's manifest.
-
-    `rule` holds warning, critical, on_k, on_n, off_m, deadband_frac.
-    """
+def create_asset(session: Session, *, asset_id: str, model_id: str) -> Asset:
+    """A new asset bound to `model_id` (its threshold version 1 comes from the manifest:
+    service.db.thresholds.ensure_initial_version)."""
     asset = Asset(asset_id=asset_id, model_id=model_id)
     session.add(asset)
     session.flush()
-    add_threshold_version(
-        session,
-        asset_id=asset_id,
-        rule=rule,
-        origin="calibrated",
-        reason="calibrated thresholds of the model",
-        created_by=f"model {model_id}/{model_version}",
-        model_id=model_id,
-        model_version=model_version,
-    )
     return asset
 
 

@@ -58,6 +58,17 @@ class Env:
         finally:
             engine.dispose()
 
+    def execute(self, sql: str, *params: Any) -> None:
+        """A raw SQL statement that returns no rows (`?` placeholders), committed."""
+        engine = make_engine(self.settings.database_url)
+        try:
+            with engine.begin() as conn:
+                if engine.dialect.name != "sqlite":
+                    sql = sql.replace("%", "%%").replace("?", "%s")
+                conn.exec_driver_sql(sql, tuple(params))
+        finally:
+            engine.dispose()
+
     def add_key(self, role: str, name: str, assets: list[str] | None = None) -> str:
         db = Database(self.settings.database_url)
         try:
