@@ -17,11 +17,22 @@ from service.grid import TimestampError, parse_timestamp
 ASSET_ID_PATTERN = r"^[A-Za-z0-9_.\-]{1,64}$"
 
 
+# Epoch seconds a reading may carry: 1970-01-01 up to the end of year 9999 (what datetime
+# can represent); anything else is refused here rather than overflowing later.
+TS_MIN_S, TS_MAX_S = 0.0, 253402300799.0
+
+
 def _parse_ts(value: object) -> float:
     try:
-        return parse_timestamp(value)
+        ts = parse_timestamp(value)
     except TimestampError as e:
         raise PydanticCustomError("timestamp", str(e)) from e
+    if not TS_MIN_S <= ts <= TS_MAX_S:
+        raise PydanticCustomError(
+            "timestamp", "{value} is outside 1970-01-01T00:00:00Z .. 9999-12-31T23:59:59Z: give epoch seconds or ISO-8601 with offset",
+            {"value": repr(value)[:40]},
+        )
+    return ts
 
 
 def _z(v: datetime) -> str:
