@@ -112,33 +112,35 @@ class BodyLimit:
             if name == b"content-length" and value.isdigit() and int(value) > self.max_bytes:
                 await error_response(413, "too_large", message)(scope, receive, send)
                 return
+        # Read the whole body (at most max_bytes) before the app sees any of it, so a chunked
+        # body over the cap is a 413 too, whatever the parser would have made of a cut-off one.
+        chunks: list[bytes] = []
         seen = 0
-        started = False
-
-        async def limited_receive() -> dict[str, Any]:
-            nonlocal seen
+        while True:
             msg = await receive()
-            if msg["type"] == "http.request":
-                seen += len(msg.get("body", b""))
-                if seen > self.max_bytes:
-                    raise _BodyTooLarge
-            return msg
-
-        async def tracking_send(msg: dict[str, Any]) -> None:
-            nonlocal started
-            if msg["type"] == "http.response.start":
-                started = True
-            await send(msg)
-
-        try:
-            await self.app(scope, limited_receive, tracking_send)
-        except _BodyTooLarge:
-            if not started:
+            if msg["type"] == "http.disconnect":
+                return
+            if msg["type"] != "http.request":
+                continue
+            part = msg.get("body", b"")
+            seen += len(part)
+            if seen > self.max_bytes:
                 await error_response(413, "too_large", message)(scope, receive, send)
+                return
+            chunks.append(part)
+            if not msg.get("more_body", False):
+                break
+        body = b"".join(chunks)
+        replayed = False
 
+        async def replay_receive() -> dict[str, Any]:
+            nonlocal replayed
+            if not replayed:
+                replayed = True
+                return {"type": "http.request", "body": body, "more_body": False}
+            return await receive()  # after the body: only the disconnect remains
 
-class _BodyTooLarge(Exception):
-    pass
+        await self.app(scope, replay_receive, send)
 
 
 class RequestMetrics:
