@@ -35,6 +35,12 @@ __all__ = [
 ]
 
 
+# Plot margins in SVG units, shared by the score and readings charts so that stacked
+# charts of one alert line up in time.
+PLOT_LEFT = 58.0
+PLOT_RIGHT = 124.0
+
+
 @dataclass(frozen=True)
 class Span:
     """A stretch of time [start_ms, end_ms]; `kind` picks its CSS class (span-<kind>)."""
@@ -178,6 +184,10 @@ def time_ticks(t0_ms: float, t1_ms: float, count: int = 6) -> list[tuple[int, st
     return out
 
 
+def _clip(text: str, n: int) -> str:
+    return text if len(text) <= n else text[: n - 1] + "…"
+
+
 def _fmt_utc(t_ms: float) -> str:
     return datetime.fromtimestamp(t_ms / 1000.0, tz=timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
 
@@ -284,8 +294,8 @@ def score_chart(
     t0, t1 = t_range if t_range else (min(t_ms), max(t_ms))
     if highlight:
         t0, t1 = min(t0, highlight.start_ms), max(t1, highlight.end_ms)
-    left = 84.0 if lanes else 58.0
-    frame = _Frame(left=left, top=12, width=width - left - 92, height=height - 12 - plot_bottom_pad, t0=t0, t1=t1, y0=y0, y1=y1, log=use_log)
+    left = 84.0 if lanes else PLOT_LEFT
+    frame = _Frame(left=left, top=12, width=width - left - PLOT_RIGHT, height=height - 12 - plot_bottom_pad, t0=t0, t1=t1, y0=y0, y1=y1, log=use_log)
 
     peak_i = max(range(len(scores)), key=lambda i: scores[i] if scores[i] is not None and math.isfinite(scores[i]) else -math.inf) if finite else None
     desc = (
@@ -429,7 +439,9 @@ def readings_chart(
         lo, hi = (min(vals), max(vals)) if vals else (0.0, 1.0)
         pad = (hi - lo) * 0.08 or (abs(hi) * 0.05 or 1.0)
         top = 8 + i * (panel_height + gap)
-        frame = _Frame(left=58, top=top, width=width - 58 - 150, height=panel_height - 8, t0=t0, t1=t1, y0=lo - pad, y1=hi + pad)
+        frame = _Frame(
+            left=PLOT_LEFT, top=top, width=width - PLOT_LEFT - PLOT_RIGHT, height=panel_height - 8, t0=t0, t1=t1, y0=lo - pad, y1=hi + pad
+        )
         parts.append(f'<g class="panel" data-channel="{escape(tr.name)}" data-points="{len(vals)}">')
         parts.append(f'<rect class="plot-bg" x="{frame.left}" y="{frame.top}" width="{frame.width:.1f}" height="{frame.height:.1f}"/>')
         if highlight:
@@ -442,8 +454,8 @@ def readings_chart(
         for pts in _polylines(frame, tr.t_ms, tr.values, (_typical_step(tr.t_ms) or 0) * 3 or None):
             parts.append(f'<polyline class="reading-line reading-line-{i}" points="{pts}"/>')
         right = frame.left + frame.width
-        parts.append(f'<text class="panel-name" x="{right + 10:.1f}" y="{frame.top + 16:.1f}">{escape(tr.name)}</text>')
-        parts.append(f'<text class="panel-unit" x="{right + 10:.1f}" y="{frame.top + 34:.1f}">{escape(tr.unit)}</text>')
+        parts.append(f'<text class="panel-name" x="{right + 8:.1f}" y="{frame.top + 16:.1f}">{escape(_clip(tr.name, 17))}</text>')
+        parts.append(f'<text class="panel-unit" x="{right + 8:.1f}" y="{frame.top + 34:.1f}">{escape(_clip(tr.unit, 17))}</text>')
         parts.append("</g>")
     parts.append("</svg>")
     return Markup("".join(parts))

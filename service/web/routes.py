@@ -13,7 +13,6 @@ another site is refused as well.
 from __future__ import annotations
 
 import logging
-import secrets
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -35,6 +34,7 @@ from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
 from service.db.keys import find_key
+from service.db.session import sqlite_file
 from service.errors import Conflict, EchowatchError, NotFound
 from service.models_registry import LoadedModel
 from service.retune import calibration_set, expected_false_alarms_per_week, levels_for_budget, preview
@@ -49,6 +49,7 @@ from service.web.session import (
     SessionCodec,
     WebSession,
     cookie_options,
+    resolve_secret,
 )
 
 log = logging.getLogger("echowatch.web")
@@ -79,17 +80,15 @@ DONE_MESSAGES = {
 
 
 def _codec(request: Request) -> SessionCodec:
-    """One codec per app. The secret comes from settings.session_secret when the service
-    has one (needed for several replicas); otherwise each process makes its own, and
-    sessions end when it restarts."""
+    """One codec per app; its secret comes from resolve_secret (settings, or a file beside
+    the SQLite database shared by all worker processes)."""
     state = request.app.state
     codec = getattr(state, "web_codec", None)
     if codec is None:
-        configured = getattr(state.settings, "session_secret", None)
-        if configured is not None and hasattr(configured, "get_secret_value"):
-            configured = configured.get_secret_value()
-        secret = configured.encode() if isinstance(configured, str) and configured else secrets.token_bytes(32)
-        codec = SessionCodec(secret, max_age_s=DEFAULT_MAX_AGE_S)
+        settings = state.settings
+        configured = settings.session_secret.get_secret_value() if settings.session_secret is not None else None
+        db_file = sqlite_file(settings.database_url)
+        codec = SessionCodec(resolve_secret(configured, db_file.parent if db_file else None), max_age_s=DEFAULT_MAX_AGE_S)
         state.web_codec = codec
     return codec
 
@@ -382,7 +381,10 @@ def alerts_page(
             flashes.append(("error", str(e)))
         except EchowatchError as e:
             flashes.append(("error", e.message))
-        counts = alert_q.count_by_state(db, allowed_assets=user.caller.assets)
+        scope = user.caller.assets
+        if asset:  # the tallies follow the asset filter
+            scope = frozenset({asset}) if scope is None else scope & {asset}
+        counts = alert_q.count_by_state(db, allowed_assets=scope)
         ids = [a.asset_id for a in readings_q.list_assets(db, now=datetime.now(timezone.utc), silent_after_s={})]
     kept = {k: v for k, v in filters.items() if v}
     tally_hrefs = {s: "/alerts?" + urlencode({**{k: v for k, v in kept.items() if k != "state"}, "state": s}) for s in counts}
@@ -488,6 +490,7 @@ def _detail_context(request: Request, db: Session, alert_id: int, user: WebUser)
             "peak": views.fmt_score(a.peak_score),
             "peak_at": views.fmt_time(a.peak_at) + " UTC",
             "levels": levels,
+            "on_delay": f"{th.on_k} of {th.on_n}" if th else "enough",
             "model": f"{a.model_id} / {a.model_version}",
             "outcome": a.outcome,
             "outcome_label": views.OUTCOME_LABELS.get(a.outcome or "", a.outcome),
@@ -735,11 +738,11 @@ def _threshold_context(request: Request, db: Session, asset_id: str, user: WebUs
                 "overlap_false": result.overlap_false_alarm,
                 "expected": views.fmt_rate_short(result.expected_false_alarms_per_week),
                 "expected_note": (
-                    f"about {views.fmt_score(result.expected_false_alarms_per_week * 30.44 / 7)} a month; "
+                    f"about {views.fmt_score(result.expected_false_alarms_per_week * 30.44 / 7)} a month "
                     if result.expected_false_alarms_per_week
                     else ""
                 ),
-                "current_expected": views.fmt_rate(result.current_expected_false_alarms_per_week),
+                "current_expected": views.fmt_rate_short(result.current_expected_false_alarms_per_week),
                 "missed_confirmed": (
                     f"{confirmed_total - result.overlap_confirmed_fault} of the {confirmed_total} confirmed faults in this stretch "
                     "would have raised no alert at these levels."

@@ -17,15 +17,22 @@ import base64
 import hashlib
 import hmac
 import json
+import logging
+import os
 import secrets
 import time
 from dataclasses import dataclass
+from pathlib import Path
+
+log = logging.getLogger("echowatch.web")
 
 SESSION_COOKIE = "echowatch_session"
 SIGNIN_COOKIE = "echowatch_signin"
 CSRF_FIELD = "csrf_token"
 DEFAULT_MAX_AGE_S = 8 * 3600  # one shift
 SIGNIN_MAX_AGE_S = 15 * 60
+SECRET_FILE = "session_secret"
+MIN_SECRET_BYTES = 16
 
 
 def _b64(data: bytes) -> str:
@@ -50,8 +57,8 @@ class SessionCodec:
     """Signs and checks session cookies and CSRF tokens under one secret."""
 
     def __init__(self, secret: bytes, max_age_s: int = DEFAULT_MAX_AGE_S) -> None:
-        if len(secret) < 16:
-            raise ValueError("the session secret must be at least 16 bytes")
+        if len(secret) < MIN_SECRET_BYTES:
+            raise ValueError(f"the session secret must be at least {MIN_SECRET_BYTES} bytes")
         self._secret = secret
         self.max_age_s = max_age_s
 
@@ -111,3 +118,39 @@ class SessionCodec:
 def cookie_options(*, secure: bool, max_age_s: int) -> dict[str, object]:
     """Keyword arguments for Response.set_cookie shared by both cookies."""
     return {"max_age": max_age_s, "httponly": True, "samesite": "strict", "secure": secure, "path": "/"}
+
+
+def resolve_secret(configured: str | None, folder: Path | None) -> bytes:
+    """The key that signs session cookies.
+
+    `configured` (settings.session_secret) wins. Otherwise a random key is kept in
+    <folder>/session_secret (the SQLite database's folder), created once with mode 0600 and
+    linked into place atomically, so every worker process of one service reads the same
+    key. With neither, each process makes its own and sessions last until it restarts.
+    """
+    if configured:
+        secret = configured.encode("utf-8")
+        if len(secret) < MIN_SECRET_BYTES:
+            raise ValueError(f"ECHOWATCH_SESSION_SECRET must be at least {MIN_SECRET_BYTES} characters, got {len(secret)}")
+        return secret
+    if folder is None:
+        log.warning("no session_secret set and no SQLite folder to keep one in: dashboard sessions last until this process restarts")
+        return secrets.token_bytes(32)
+    path = Path(folder) / SECRET_FILE
+    if not path.exists():
+        folder.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f".{SECRET_FILE}.{os.getpid()}.{secrets.token_hex(4)}")
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        try:
+            with os.fdopen(fd, "w") as f:
+                f.write(secrets.token_hex(32))
+            try:
+                os.link(tmp, path)  # fails if another process got there first: then use theirs
+            except FileExistsError:
+                pass
+        finally:
+            tmp.unlink(missing_ok=True)
+    text = path.read_text(encoding="utf-8").strip()
+    if len(text) < MIN_SECRET_BYTES:
+        raise ValueError(f"{path}: the session secret in this file is shorter than {MIN_SECRET_BYTES} characters; delete it to make a new one")
+    return text.encode("utf-8")

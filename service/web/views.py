@@ -76,10 +76,10 @@ def fmt_rate(per_week: float | None) -> str:
     if per_week is None:
         return "not known"
     if per_week == 0:
-        return "0 / week"
+        return "0 a week"
     if per_week < 1:
-        return f"{format_number(per_week)} / week (about {format_number(per_week * 30.44 / 7)} / month)"
-    return f"{format_number(per_week)} / week"
+        return f"{format_number(per_week)} a week (about {format_number(per_week * 30.44 / 7)} a month)"
+    return f"{format_number(per_week)} a week"
 
 
 def fmt_rate_short(per_week: float | None) -> str:

@@ -63,10 +63,10 @@ def served() -> Iterator[Served]:
             wait_ready(url, proc)
         except Exception as e:
             pytest.fail(f"echowatch serve did not come up: {e}\n{log_path.read_text(errors='replace')[-3000:]}")
-        names = {"machine": "plc-gateway", "maintenance": "mira.tech", "operator": "oskar.ops", "maintenance2": "lee.tech"}
+        names = {"machine": "plc-gateway", "maintenance": "mira.tech", "operator": "oskar.ops"}
         makers = {
             who: subprocess.Popen(
-                _cli("keys", "create", "--role", "maintenance" if who == "maintenance2" else who, "--name", name),
+                _cli("keys", "create", "--role", who, "--name", name),
                 env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=folder,
             )
             for who, name in names.items()

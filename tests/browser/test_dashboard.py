@@ -198,7 +198,7 @@ def test_a_form_post_without_its_csrf_token_is_refused(page: Any, served: Served
     alert_id = served.rows("SELECT id FROM alerts ORDER BY id DESC LIMIT 1")[0][0]
     notes = lambda: served.rows("SELECT COUNT(*) FROM alert_events WHERE alert_id = ? AND kind = 'note'", alert_id)[0][0]  # noqa: E731
     before = notes()
-    sign_in(page, served, "maintenance2")
+    sign_in(page, served, "maintenance")
     page.goto(f"{served.url}/alerts/{alert_id}")
 
     # Strip the token from the real form, then submit it as a person would.
@@ -211,7 +211,7 @@ def test_a_form_post_without_its_csrf_token_is_refused(page: Any, served: Served
     shots.both(page, "csrf-refused")
     assert notes() == before
 
-    # A token of another session is refused as well.
+    # A token of another session (same key, signed in elsewhere) is refused as well.
     other = page.context.browser.new_context()
     try:
         other_page = other.new_page()

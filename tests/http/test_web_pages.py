@@ -1,0 +1,190 @@
+"""The dashboard's pages through the real app (TestClient, SQLite file, tiny ONNX model):
+sessions, CSRF, roles, escaping and bad input. tests/browser drives the same pages in Chromium."""
+
+from __future__ import annotations
+
+import re
+import time
+from typing import Any
+
+from conftest import Env
+
+import tiny_model
+
+CENTER = dict(zip(tiny_model.CHANNELS, tiny_model.CENTER))
+SCALE = dict(zip(tiny_model.CHANNELS, tiny_model.SCALE))
+
+
+def open_alert(env: Env, asset: str = "pump-01") -> int:
+    """Readings far from the tiny model's centre on one channel: the rule opens an alert."""
+    t0 = int(time.time() // 120 * 120) - 3600
+    readings = []
+    for i in range(40):
+        values = dict(CENTER)
+        if 10 <= i < 30:
+            values["vibration_mm_s"] = CENTER["vibration_mm_s"] + 8 * SCALE["vibration_mm_s"]  # score 64/6 > warning 4
+        readings.append({"ts": t0 + 60 * i, "values": values})
+    r = env.post(asset, readings)
+    assert r.status_code == 200, r.text
+    assert r.json()["alerts_opened"] == 1
+    return env.rows("SELECT id FROM alerts WHERE asset_id = ? ORDER BY id DESC", asset)[0][0]
+
+
+def sign_in(env: Env, role: str, next_path: str = "/alerts") -> Any:
+    env.client.cookies.clear()
+    page = env.client.get("/signin")
+    token = re.search(r'name="signin_token" value="([^"]+)"', page.text).group(1)
+    return env.client.post(
+        "/signin", data={"api_key": env.keys[role], "signin_token": token, "next": next_path}, follow_redirects=False
+    )
+
+
+def csrf(env: Env, path: str = "/alerts") -> str:
+    return re.search(r'name="csrf_token" value="([^"]+)"', env.client.get(path).text).group(1)
+
+
+def test_pages_need_a_session_and_posts_store_nothing(env: Env) -> None:
+    alert_id = open_alert(env)
+    for path in ("/alerts", f"/alerts/{alert_id}", "/assets", "/assets/pump-01/thresholds"):
+        r = env.client.get(path, follow_redirects=False)
+        assert r.status_code == 303 and r.headers["location"].startswith("/signin?next="), path
+    r = env.client.post(f"/alerts/{alert_id}/acknowledge", data={"note": "x"}, follow_redirects=False)
+    assert r.status_code == 401
+    assert env.rows("SELECT state FROM alerts WHERE id = ?", alert_id) == [("unacknowledged",)]
+
+
+def test_sign_in_sets_an_http_only_strict_cookie_and_stays_on_this_site(env: Env) -> None:
+    r = sign_in(env, "maintenance", next_path="//elsewhere.example/x")
+    assert r.status_code == 303 and r.headers["location"] == "/alerts"  # no open redirect
+    cookie = next(c for c in r.headers.get_list("set-cookie") if c.startswith("echowatch_session="))
+    attrs = {a.strip().split("=")[0].lower() for a in cookie.split(";")[1:]}
+    assert {"httponly", "samesite", "path", "max-age"} <= attrs
+    assert "samesite=strict" in cookie.lower()
+    assert "secure" not in attrs  # plain http on loopback; https pages get Secure
+    assert env.keys["maintenance"] not in cookie  # the key itself never goes to the browser
+    assert env.client.get("/alerts").status_code == 200
+
+
+def test_sign_in_refuses_a_form_without_its_token_and_machine_keys(env: Env) -> None:
+    env.client.get("/signin")
+    r = env.client.post("/signin", data={"api_key": env.keys["operator"], "signin_token": "forged"}, follow_redirects=False)
+    assert r.status_code == 403 and "echowatch_session" not in r.headers.get("set-cookie", "")
+    r = sign_in(env, "machine")
+    assert r.status_code == 403 and "for machines posting readings" in r.text
+    assert "echowatch_session" not in r.headers.get("set-cookie", "")
+
+
+def test_cross_site_post_is_refused_even_with_a_valid_token(env: Env) -> None:
+    alert_id = open_alert(env)
+    sign_in(env, "maintenance")
+    token = csrf(env)
+    r = env.client.post(
+        f"/alerts/{alert_id}/acknowledge", data={"csrf_token": token}, headers={"Origin": "http://elsewhere.example"}, follow_redirects=False
+    )
+    assert r.status_code == 403
+    assert env.rows("SELECT state FROM alerts WHERE id = ?", alert_id) == [("unacknowledged",)]
+    r = env.client.post(f"/alerts/{alert_id}/acknowledge", data={"csrf_token": token}, follow_redirects=False)
+    assert r.status_code == 303
+    assert env.rows("SELECT state, acknowledged_by FROM alerts WHERE id = ?", alert_id) == [("acknowledged", "test-maintenance")]
+
+
+def test_a_revoked_key_ends_its_session(env: Env) -> None:
+    from service.db.keys import revoke_key
+
+    sign_in(env, "maintenance")
+    assert env.client.get("/alerts").status_code == 200
+    key_id = env.rows("SELECT id FROM api_keys WHERE name = 'test-maintenance'")[0][0]
+    with env.client.app.state.db.transaction() as s:
+        assert revoke_key(s, key_id=key_id, actor="test")
+    r = env.client.get("/alerts", follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"].startswith("/signin")
+
+
+def test_threshold_editor_is_for_operators_only(env: Env) -> None:
+    open_alert(env)
+    sign_in(env, "maintenance")
+    assert env.client.get("/assets/pump-01/thresholds").status_code == 403
+    assert "/thresholds" not in env.client.get("/assets").text
+    token = csrf(env)
+    for path, form in (
+        ("/assets/pump-01/thresholds", {"warning": "5", "reason": "not allowed"}),
+        ("/assets/pump-01/shelve", {"hours": "2", "reason": "not allowed"}),
+        ("/assets/pump-01/unshelve", {}),
+        ("/assets/pump-01/thresholds/rollback", {"version": "1", "reason": "not allowed"}),
+    ):
+        assert env.client.post(path, data={**form, "csrf_token": token}, follow_redirects=False).status_code == 403, path
+    assert env.count("threshold_versions", "asset_id = 'pump-01'") == 1
+    assert env.count("audit_log", "action LIKE 'asset.%' OR action = 'threshold.set'") == 0
+
+    sign_in(env, "operator")
+    page = env.client.get("/assets/pump-01/thresholds?by=level&warning=5")
+    assert page.status_code == 200 and 'data-figure="would-open"' in page.text
+    r = env.client.post(
+        "/assets/pump-01/thresholds", data={"warning": "5", "reason": "quieter", "csrf_token": csrf(env)}, follow_redirects=False
+    )
+    assert r.status_code == 303
+    assert env.rows("SELECT version, warning, origin, created_by FROM threshold_versions WHERE asset_id = 'pump-01' ORDER BY version DESC")[0] == (
+        2, 5.0, "manual", "test-operator"
+    )
+    r = env.client.post("/assets/pump-01/shelve", data={"hours": "2", "reason": "pump swap", "csrf_token": csrf(env)}, follow_redirects=False)
+    assert r.status_code == 303
+    assert env.rows("SELECT shelve_reason, shelved_by FROM assets WHERE asset_id = 'pump-01'") == [("pump swap", "test-operator")]
+
+
+def test_bad_threshold_input_names_the_field_and_stores_nothing(env: Env) -> None:
+    open_alert(env)
+    sign_in(env, "operator")
+    token = csrf(env)
+    cases = (
+        ({"warning": "abc", "reason": "why not"}, "Warning level"),
+        ({"warning": "-1", "reason": "why not"}, "Warning level"),
+        ({"warning": "5", "critical": "2", "reason": "why not"}, "Critical level"),
+        ({"warning": "5", "reason": ""}, "Reason"),
+    )
+    for form, field in cases:
+        r = env.client.post("/assets/pump-01/thresholds", data={**form, "csrf_token": token}, follow_redirects=False)
+        assert r.status_code == 422 and field in r.text, form
+    page = env.client.get("/assets/pump-01/thresholds?by=budget&budget=zero")
+    assert page.status_code == 200 and "False alarms per week" in page.text and 'data-figure="would-open"' not in page.text
+    r = env.client.post("/assets/pump-01/shelve", data={"hours": "9999", "reason": "too long", "csrf_token": token}, follow_redirects=False)
+    assert r.status_code == 422 and "720" in r.text
+    assert env.count("threshold_versions", "asset_id = 'pump-01'") == 1
+    assert env.rows("SELECT shelved_until FROM assets WHERE asset_id = 'pump-01'") == [(None,)]
+
+
+def test_user_text_is_escaped_everywhere(env: Env) -> None:
+    alert_id = open_alert(env)
+    env.keys["maintenance"] = env.add_key("maintenance", '<img src=x onerror="alert(1)">')
+    sign_in(env, "maintenance")
+    r = env.client.post(
+        f"/alerts/{alert_id}/note", data={"note": "<script>alert('x')</script>", "csrf_token": csrf(env)}, follow_redirects=True
+    )
+    assert r.status_code == 200
+    assert "<script>alert(" not in r.text and "&lt;script&gt;alert(" in r.text
+    assert "<img src=x" not in r.text and "&lt;img src=x" in r.text
+    assert "default-src 'self'" in r.headers["content-security-policy"]
+
+
+def test_acting_twice_says_what_state_the_alert_is_in(env: Env) -> None:
+    alert_id = open_alert(env)
+    sign_in(env, "maintenance")
+    token = csrf(env)
+    r = env.client.post(f"/alerts/{alert_id}/close", data={"outcome": "false_alarm", "csrf_token": token}, follow_redirects=False)
+    assert r.status_code == 303
+    r = env.client.post(f"/alerts/{alert_id}/acknowledge", data={"csrf_token": token}, follow_redirects=False)
+    assert r.status_code == 409 and "closed" in r.text
+    r = env.client.post(f"/alerts/{alert_id}/close", data={"outcome": "broken", "csrf_token": token}, follow_redirects=False)
+    assert r.status_code in (409, 422)
+    assert env.rows("SELECT state, outcome FROM alerts WHERE id = ?", alert_id) == [("closed", "false_alarm")]
+
+
+def test_alert_list_filters_and_reports_bad_dates(env: Env) -> None:
+    open_alert(env, "pump-01")
+    open_alert(env, "pump-02")
+    sign_in(env, "maintenance")
+    page = env.client.get("/alerts?asset=pump-02")
+    assert re.findall(r'<tr data-alert-id="(\d+)"', page.text) == [str(env.rows("SELECT id FROM alerts WHERE asset_id = 'pump-02'")[0][0])]
+    assert 'data-state="unacknowledged">1<' in page.text  # the counts follow the asset filter
+    assert 'data-state="unacknowledged">2<' in env.client.get("/alerts").text
+    page = env.client.get("/alerts?since=yesterday")
+    assert page.status_code == 200 and "Opened from" in page.text and "not a date and time" in page.text
