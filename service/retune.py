@@ -141,6 +141,53 @@ def levels_for_budget(cal: CalibrationSet, rule: AlertRule, false_alarms_per_wee
 
 
 @dataclass(frozen=True)
+class Proposal:
+    rule: AlertRule
+    budget: BudgetLevels | None  # set when the levels came from a false-alarm budget
+
+
+TIMING_FIELDS = ("on_k", "on_n", "off_m", "deadband_frac")
+
+
+def propose_rule(
+    current: AlertRule,
+    *,
+    warning: float | None = None,
+    critical: float | None = None,
+    false_alarms_per_week: float | None = None,
+    on_k: int | None = None,
+    on_n: int | None = None,
+    off_m: int | None = None,
+    deadband_frac: float | None = None,
+    cal: CalibrationSet | None = None,
+) -> Proposal:
+    """The rule an operator proposes, from the rule in force and what they changed.
+
+    Timing given overrides the timing in force. Levels: `warning` (with `critical`, else
+    critical keeps the critical/warning ratio in force), or `false_alarms_per_week` (the
+    warning level for that budget on `cal` under the proposed timing, critical at the same
+    ratio), or unchanged. ValueError (saying which) for an impossible combination.
+    """
+    if false_alarms_per_week is not None and (warning is not None or critical is not None):
+        raise ValueError("give either warning (and optional critical) or false_alarms_per_week, not both")
+    if critical is not None and warning is None:
+        raise ValueError("critical needs warning beside it")
+    given = {"on_k": on_k, "on_n": on_n, "off_m": off_m, "deadband_frac": deadband_frac}
+    timing = {f: given[f] if given[f] is not None else getattr(current, f) for f in TIMING_FIELDS}
+    base = AlertRule(warning=current.warning, critical=current.critical, **timing)  # ValueError on bad timing
+    if false_alarms_per_week is not None:
+        if cal is None:
+            raise ValueError("a false-alarm budget needs the model's calibration scores, and there are none")
+        levels = levels_for_budget(cal, base, false_alarms_per_week)
+        return Proposal(base.with_thresholds(levels.warning, levels.critical), levels)
+    if warning is not None:
+        if critical is not None and critical < warning:
+            raise ValueError(f"critical ({critical}) must be >= warning ({warning})")
+        return Proposal(base.with_thresholds(warning, critical), None)
+    return Proposal(base, None)
+
+
+@dataclass(frozen=True)
 class Preview:
     """Proposed rule against the current one over the same stored scores."""
 

@@ -12,7 +12,6 @@ proposed timing, critical at the same ratio), or stay as they are.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from typing import Annotated
 
@@ -40,7 +39,7 @@ from service.db.alerts import from_ms, just_after
 from service.db.models import Asset, ThresholdVersion
 from service.errors import BadInput
 from service.models_registry import LoadedModel, ModelRegistry
-from service.retune import BudgetLevels, ProposedAlert, calibration_set, levels_for_budget, preview
+from service.retune import TIMING_FIELDS, Proposal, ProposedAlert, calibration_set, preview, propose_rule
 
 router = APIRouter(prefix="/v1/assets/{asset_id}", tags=["thresholds"])
 
@@ -81,28 +80,28 @@ def _in_force(db: DbSession, asset: Asset, model: LoadedModel) -> ThresholdVersi
     )
 
 
-@dataclass(frozen=True)
-class _Proposed:
-    rule: AlertRule
-    budget: BudgetLevels | None
-
-
-def _propose(body: ThresholdProposal, current: AlertRule, model: LoadedModel) -> _Proposed:
-    timing = {f: getattr(body, f) if getattr(body, f) is not None else getattr(current, f) for f in q.TIMING_FIELDS}
-    try:
-        base = AlertRule(warning=current.warning, critical=current.critical, **timing)
-    except ValueError as e:
-        raise BadInput(f"rule timing: {e}", field="body") from None
+def _propose(body: ThresholdProposal, current: AlertRule, model: LoadedModel) -> Proposal:
+    cal = None
     if body.false_alarms_per_week is not None:
         try:
             cal = calibration_set(model.calibration, model.manifest)
-            levels = levels_for_budget(cal, base, body.false_alarms_per_week)
         except ValueError as e:
             raise BadInput(f"cannot turn that budget into a threshold: {e}", field="body.false_alarms_per_week") from None
-        return _Proposed(base.with_thresholds(levels.warning, levels.critical), levels)
-    if body.warning is not None:
-        return _Proposed(base.with_thresholds(body.warning, body.critical), None)
-    return _Proposed(base, None)
+    try:
+        return propose_rule(
+            current,
+            warning=body.warning,
+            critical=body.critical,
+            false_alarms_per_week=body.false_alarms_per_week,
+            on_k=body.on_k,
+            on_n=body.on_n,
+            off_m=body.off_m,
+            deadband_frac=body.deadband_frac,
+            cal=cal,
+        )
+    except ValueError as e:
+        field = "body.false_alarms_per_week" if body.false_alarms_per_week is not None else "body"
+        raise BadInput(f"proposed rule: {e}", field=field) from None
 
 
 @router.get("/threshold", response_model=ThresholdOut)
@@ -188,7 +187,7 @@ def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, calle
     if body.rollback_to is not None:
         row = q.rollback(db, asset=asset, to_version=body.rollback_to, reason=body.reason, actor=caller.name, manifest=model.manifest)
     else:
-        changes = [f for f in ("warning", "false_alarms_per_week", *q.TIMING_FIELDS) if getattr(body, f) is not None]
+        changes = [f for f in ("warning", "false_alarms_per_week", *TIMING_FIELDS) if getattr(body, f) is not None]
         if not changes:
             raise BadInput(
                 "nothing to change: give warning (and optional critical), false_alarms_per_week, rule timing "

@@ -29,10 +29,9 @@ from service.db.models import Alert, Asset, AuditLog, ThresholdVersion, WindowSc
 from service.errors import BadInput, Conflict, NotFound
 from service.manifest import Manifest
 from service.models_registry import version_key
-from service.retune import PastAlert, ScoreSeries
+from service.retune import TIMING_FIELDS, PastAlert, ScoreSeries
 
 MAX_SHELVE = timedelta(days=30)
-TIMING_FIELDS = ("on_k", "on_n", "off_m", "deadband_frac")
 
 
 def get_asset(session: Session, *, asset_id: str) -> Asset:

@@ -18,6 +18,7 @@ from service.retune import (
     expected_false_alarms_per_week,
     levels_for_budget,
     preview,
+    propose_rule,
     would_open,
 )
 from service.thresholds import WEEK_S, CalibrationSet, threshold_for_budget
@@ -211,3 +212,28 @@ def test_preview_compares_proposed_and_current_rules():
     assert result.expected_false_alarms_per_week < result.current_expected_false_alarms_per_week
     empty = preview(series([]), higher, RULE, past, None)
     assert empty.proposed == [] and empty.first_window_end_ms is None and empty.expected_false_alarms_per_week is None
+
+
+def test_propose_rule_levels_timing_and_refusals():
+    current = AlertRule(warning=2.0, critical=3.0, on_k=3, on_n=5, off_m=6, deadband_frac=0.1)
+    same = propose_rule(current)
+    assert same.rule == current and same.budget is None
+    by_value = propose_rule(current, warning=4.0).rule
+    assert (by_value.warning, by_value.critical, by_value.on_k) == (4.0, 6.0, 3)  # ratio 1.5 kept
+    assert propose_rule(current, warning=4.0, critical=9.0).rule.critical == 9.0
+    timing = propose_rule(current, on_k=1, on_n=2, deadband_frac=0.0).rule
+    assert (timing.warning, timing.on_k, timing.on_n, timing.off_m, timing.deadband_frac) == (2.0, 1, 2, 6, 0.0)
+    cal = _normal_calibration(weeks=2)
+    budget = propose_rule(current, false_alarms_per_week=2.0, on_k=2, on_n=3, cal=cal)
+    assert budget.budget is not None
+    assert budget.rule.warning == threshold_for_budget(cal, AlertRule(2.0, 3.0, 2, 3, 6, 0.1), 2.0).threshold
+    assert budget.rule.critical == pytest.approx(budget.rule.warning * 1.5)
+    for kwargs, words in [
+        ({"warning": 1.0, "false_alarms_per_week": 1.0}, "not both"),
+        ({"critical": 5.0}, "critical needs warning"),
+        ({"warning": 5.0, "critical": 4.0}, "must be >= warning"),
+        ({"on_k": 6}, "on_k <= on_n"),
+        ({"false_alarms_per_week": 1.0}, "calibration scores"),
+    ]:
+        with pytest.raises(ValueError, match=words):
+            propose_rule(current, **kwargs)
