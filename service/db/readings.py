@@ -117,9 +117,11 @@ def insert_readings(session: Session, *, asset_id: str, rows: Sequence[tuple[int
 
 def reading_span_ms(session: Session, *, asset_id: str) -> tuple[int | None, int | None]:
     """(oldest, newest) stored reading time of the asset in epoch ms."""
-    lo, hi = session.execute(
-        select(func.min(Reading.ts_ms), func.max(Reading.ts_ms)).where(Reading.asset_id == asset_id)
-    ).one()
+    # Two scalar subqueries, each a single index seek: min() and max() in one SELECT make
+    # SQLite walk every index entry of the asset (cost growing with its history).
+    lo_q = select(func.min(Reading.ts_ms)).where(Reading.asset_id == asset_id).scalar_subquery()
+    hi_q = select(func.max(Reading.ts_ms)).where(Reading.asset_id == asset_id).scalar_subquery()
+    lo, hi = session.execute(select(lo_q, hi_q)).one()
     return (int(lo) if lo is not None else None, int(hi) if hi is not None else None)
 
 
