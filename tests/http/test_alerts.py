@@ -175,3 +175,21 @@ def test_roles(svc: Service):
     assert alert_row(svc, a).state == "unacknowledged"
     for role in ("maintenance", "operator", "admin"):
         assert c.get(f"/v1/alerts/{a}", headers=svc.h(role)).status_code == 200
+
+
+def test_concurrent_actions_on_one_alert_apply_once(svc: Service):
+    """Parallel requests: the state check and change are one transaction, so one wins."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    a = add_alert(svc, "pump-01", T0 + H, returned_at=T0 + 2 * H)
+    hm = svc.h("maintenance")
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        acks = list(pool.map(lambda _: svc.client.post(f"/v1/alerts/{a}/acknowledge", headers=hm).status_code, range(4)))
+        closes = list(
+            pool.map(lambda o: svc.client.post(f"/v1/alerts/{a}/close", json={"outcome": o}, headers=hm).status_code,
+                     ["confirmed_fault", "false_alarm", "unknown", "planned_work"])
+        )
+    assert sorted(acks) == [200, 409, 409, 409] and sorted(closes) == [200, 409, 409, 409]
+    with svc.db.session() as s:
+        kinds = [e.kind for e in s.scalars(select(AlertEvent).where(AlertEvent.alert_id == a))]
+    assert kinds.count("acknowledged") == 1 and kinds.count("closed") == 1
