@@ -55,7 +55,7 @@ def test_metrics_in_prometheus_text_format(env) -> None:
     assert s[("echowatch_http_requests_total", route)] == 1
     # Histogram buckets are cumulative.
     buckets = [x.value for x in families["echowatch_http_request_seconds"].samples if x.name.endswith("_bucket")]
-    assert buckets == sorted(buckets) and buckets[-1] >= 2
+    assert buckets == sorted(buckets) and buckets[-1] >= 1
 
 
 def test_start_refused_on_a_bad_model_with_the_reason(tmp_path, tiny_dir) -> None:
