@@ -181,7 +181,7 @@ def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller
 
 @router.put("/threshold", response_model=ThresholdOut)
 def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, caller: OperatorCaller, registry: RegistryDep) -> ThresholdOut:
-    asset = q.get_asset(db, asset_id=asset_id)
+    asset = q.get_asset(db, asset_id=asset_id, for_update=True)  # concurrent changes to one asset take turns
     model = _model(registry, asset)
     current = q.ensure_initial_version(db, asset=asset, manifest=model.manifest)
     if body.rollback_to is not None:
@@ -224,7 +224,7 @@ def _shelve_out(asset: Asset) -> ShelveOut:
 
 @router.post("/shelve", response_model=ShelveOut)
 def shelve(asset_id: AssetId, body: ShelveIn, db: WriteSession, caller: OperatorCaller) -> ShelveOut:
-    asset = q.get_asset(db, asset_id=asset_id)
+    asset = q.get_asset(db, asset_id=asset_id, for_update=True)
     q.shelve(db, asset=asset, until=body.until, reason=body.reason, actor=caller.name)
     out = _shelve_out(asset)
     db.commit()
@@ -233,7 +233,7 @@ def shelve(asset_id: AssetId, body: ShelveIn, db: WriteSession, caller: Operator
 
 @router.delete("/shelve", response_model=ShelveOut)
 def unshelve(asset_id: AssetId, db: WriteSession, caller: OperatorCaller) -> ShelveOut:
-    asset = q.get_asset(db, asset_id=asset_id)
+    asset = q.get_asset(db, asset_id=asset_id, for_update=True)
     q.unshelve(db, asset=asset, actor=caller.name)
     out = _shelve_out(asset)
     db.commit()

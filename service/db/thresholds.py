@@ -34,8 +34,9 @@ from service.retune import TIMING_FIELDS, PastAlert, ScoreSeries
 MAX_SHELVE = timedelta(days=30)
 
 
-def get_asset(session: Session, *, asset_id: str) -> Asset:
-    asset = session.get(Asset, asset_id)
+def get_asset(session: Session, *, asset_id: str, for_update: bool = False) -> Asset:
+    """The asset row (locked until commit with `for_update`, so changes to it queue); NotFound if none."""
+    asset = session.get(Asset, asset_id, with_for_update=for_update)
     if asset is None:
         raise NotFound(f"no asset {asset_id!r}: it appears once a machine has posted readings for it", field="path.asset_id")
     return asset

@@ -190,3 +190,20 @@ def test_threshold_roles(svc: Service):
     assert c.put(f"/v1/assets/{A}/threshold", json=body, headers=svc.h("machine")).status_code == 403
     assert c.get(f"/v1/assets/{A}/threshold", headers=svc.h("maintenance")).json()["version"] == 1  # nothing changed
     assert c.put(f"/v1/assets/{A}/threshold", json=body, headers=svc.h("admin")).status_code == 200
+
+
+def test_parallel_changes_get_consecutive_versions(svc: Service):
+    from concurrent.futures import ThreadPoolExecutor
+
+    w = svc.manifest().thresholds.warning
+
+    def put(i: int) -> tuple[int, int]:
+        r = svc.client.put(f"/v1/assets/{A}/threshold", json={"warning": (2 + i) * w, "reason": f"parallel change {i}"}, headers=svc.h("operator"))
+        return r.status_code, r.json().get("version", 0)
+
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        results = list(pool.map(put, range(4)))
+    assert [code for code, _ in results] == [200] * 4
+    assert sorted(v for _, v in results) == [2, 3, 4, 5]
+    hist = svc.client.get(f"/v1/assets/{A}/threshold/history", headers=svc.h("maintenance")).json()["items"]
+    assert [v["version"] for v in hist] == [5, 4, 3, 2, 1]
