@@ -28,7 +28,7 @@ from service.api.schemas_alerts import (
     threshold_out,
 )
 from service.db import alerts as q
-from service.errors import BadInput
+from service.errors import BadInput, ModelError
 
 router = APIRouter(prefix="/v1", tags=["alerts"])
 
@@ -77,7 +77,7 @@ def get_alert(alert_id: AlertId, db: DbSession, caller: MaintenanceCaller, regis
 def _window_period(registry: RegistryDep, model_id: str) -> float | None:
     try:
         return registry.get(model_id).manifest.window_period_s
-    except Exception:  # the model may no longer be served; the times are then unknown
+    except ModelError:  # the model is no longer served; the rule's times in seconds are then unknown
         return None
 
 
