@@ -7,9 +7,9 @@ import re
 import time
 from typing import Any
 
-from conftest import Env
-
 import tiny_model
+
+Env = Any  # tests/http/conftest.py's Env (the `env` fixture); not imported: several conftest modules exist
 
 CENTER = dict(zip(tiny_model.CHANNELS, tiny_model.CENTER))
 SCALE = dict(zip(tiny_model.CHANNELS, tiny_model.SCALE))
