@@ -1,0 +1,121 @@
+"""The service's commands in-process: keys create, db upgrade, serve's start-up checks,
+replay's file reading, retries and refusals. Settings reach a command through ECHOWATCH_*
+variables, as they do in production (monkeypatch restores them)."""
+
+from __future__ import annotations
+
+import shutil
+import sqlite3
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from service.cli import main
+from service.db.keys import hash_key
+from service.replay import AssetSeries, ReplayError, read_file, replay
+
+
+@pytest.fixture
+def cli_env(monkeypatch, tmp_path: Path, tiny_dir: Path) -> Path:
+    db = tmp_path / "cli.db"
+    monkeypatch.setenv("ECHOWATCH_DATABASE_URL", f"sqlite:///{db}")
+    monkeypatch.setenv("ECHOWATCH_MODEL_DIR", str(tiny_dir))
+    monkeypatch.chdir(tmp_path)  # no stray .env is read
+    return db
+
+
+def test_keys_create_prints_the_key_alone_on_one_line(cli_env: Path, capsys) -> None:
+    assert main(["keys", "create", "--role", "machine", "--name", "gateway-7", "--assets", "pump-01,pump-02"]) == 0
+    out, err = capsys.readouterr()
+    lines = out.splitlines()
+    assert len(lines) == 1 and out.endswith("\n")
+    key = lines[0]
+    assert key.startswith("ew_") and len(key) >= 40
+    assert "machine key" in err and key not in err
+    with sqlite3.connect(cli_env) as c:
+        rows = c.execute("SELECT name, role, assets, key_hash FROM api_keys").fetchall()
+        audit = c.execute("SELECT action, actor FROM audit_log").fetchall()
+    assert rows == [("gateway-7", "machine", '["pump-01", "pump-02"]', hash_key(key))]
+    assert audit == [("key.create", "cli")]
+
+
+@pytest.mark.parametrize(
+    ("args", "words"),
+    [
+        (["--role", "operator", "--name", "ann", "--assets", "pump-01"], "only machine keys"),
+        (["--role", "machine", "--name", "gw", "--assets", "bad id!"], "asset id"),
+        (["--role", "machine", "--name", " "], "name"),
+    ],
+)
+def test_keys_create_refusals_exit_2_with_the_reason(cli_env: Path, capsys, args: list[str], words: str) -> None:
+    assert main(["keys", "create", *args]) == 2
+    out, err = capsys.readouterr()
+    assert out == "" and words in err
+    with sqlite3.connect(cli_env) as c:
+        assert c.execute("SELECT COUNT(*) FROM api_keys").fetchone()[0] == 0
+
+
+def test_db_upgrade_creates_the_schema_and_is_repeatable(cli_env: Path, capsys) -> None:
+    assert main(["db", "upgrade"]) == 0
+    assert "upgraded from empty to" in capsys.readouterr().err
+    assert main(["db", "upgrade"]) == 0
+    assert "already at revision" in capsys.readouterr().err
+    with sqlite3.connect(cli_env) as c:
+        tables = {r[0] for r in c.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        assert c.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    assert {"api_keys", "assets", "readings", "window_scores", "alerts", "alert_events", "threshold_versions", "audit_log"} <= tables
+
+
+def test_serve_refuses_a_bad_model_before_listening(cli_env: Path, tmp_path: Path, tiny_dir: Path, monkeypatch, capsys) -> None:
+    bad = tmp_path / "bad"
+    shutil.copytree(tiny_dir, bad)
+    manifest = bad / "test-pumps" / "1" / "manifest.json"
+    manifest.write_text(manifest.read_text().replace('"window": 6', '"window": 7'))
+    monkeypatch.setenv("ECHOWATCH_MODEL_DIR", str(bad))
+    assert main(["serve", "--port", "1"]) == 2
+    err = capsys.readouterr().err
+    assert "refusing to start" in err and "sha256" not in err and "[batch, 7, 6]" in err
+
+
+def test_replay_reads_a_wide_csv_and_posts_it(env, tmp_path: Path) -> None:
+    import tiny_model
+
+    path = tmp_path / "readings.csv"
+    lines = ["timestamp,asset," + ",".join(tiny_model.CHANNELS)]
+    for i in range(30):
+        for asset in ("pump-01", "pump-02"):
+            vals = [str(c + 0.01 * (i % 3)) if not (asset == "pump-02" and i == 7 and j == 2) else ""
+                    for j, c in enumerate(tiny_model.CENTER)]
+            lines.append(f"2026-10-01T00:{i:02d}:02Z,{asset}," + ",".join(vals))
+    path.write_text("\n".join(lines) + "\n")
+    channels, series = read_file(path)
+    assert channels == tiny_model.CHANNELS and set(series) == {"pump-01", "pump-02"}
+    assert np.isnan(series["pump-02"].values[7, 2])
+    summary = replay(url="http://testserver", key=env.keys["machine"], channels=channels, series=series,
+                     batch=7, progress=False, client=env.client)
+    assert (summary.readings, summary.accepted, summary.duplicates, summary.requests) == (60, 60, 0, 10)
+    assert summary.windows_scored == env.count("window_scores") == 2 * 12
+    again = replay(url="http://testserver", key=env.keys["machine"], channels=channels, series=series,
+                   batch=30, progress=False, client=env.client)
+    assert (again.accepted, again.duplicates, again.windows_scored) == (0, 60, 0)
+
+
+def test_replay_retries_connection_errors_then_gives_up(tmp_path: Path) -> None:
+    from service.demo import free_port
+
+    port = free_port()  # nothing listens there
+    waits: list[float] = []
+    series = {"pump-01": AssetSeries(np.array([1.79e9]), np.zeros((1, 6)))}
+    with pytest.raises(ReplayError, match="gave up after 4 attempts") as e:
+        replay(url=f"http://127.0.0.1:{port}", key="k", channels=["a"] * 6, series=series, retries=3,
+               progress=False, sleep=waits.append)
+    assert "asset pump-01" in str(e.value) and "ConnectError" in str(e.value)
+    assert waits == [0.25, 0.5, 1.0]  # exponential backoff
+
+
+def test_replay_does_not_retry_a_refused_batch(env) -> None:
+    series = {"pump-01": AssetSeries(np.array([1.79e9 + 60 * i for i in range(3)]), np.zeros((3, 5)))}
+    with pytest.raises(ReplayError, match=r"refused the batch \(422\).*missing channel") :
+        replay(url="http://testserver", key=env.keys["machine"], channels=["flow_m3h", "suction_kpa", "discharge_kpa", "current_a", "bearing_temp_c"],
+               series=series, progress=False, client=env.client, sleep=lambda s: pytest.fail("retried a 422"))
