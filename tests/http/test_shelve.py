@@ -91,6 +91,7 @@ def test_a_shelved_asset_stores_scores_but_opens_no_alert(svc: Service):
     t, v = day.times_s[A], day.values[A]
     first = _post(svc, t[:180], v[:180], day.channels)
     assert first["windows_scored"] >= 5 and first["alerts_opened"] == 0
+    assert first["threshold_version"] == 2  # the ingest path runs the rule with the version just PUT
     with svc.db.session() as s:
         assert len(list(s.scalars(select(WindowScore).where(WindowScore.asset_id == A)))) == first["windows_scored"]
         assert not list(s.scalars(select(Alert)))
