@@ -126,7 +126,7 @@ def test_empty_batch_and_extra_fields(env) -> None:
 
 
 def test_batch_over_the_reading_limit_is_413(tmp_path, tiny_dir) -> None:
-    from conftest import start_env
+    from service_env import start_env
 
     gen = start_env(tmp_path, tiny_dir, max_batch_readings=10)
     env = next(gen)
@@ -139,7 +139,7 @@ def test_batch_over_the_reading_limit_is_413(tmp_path, tiny_dir) -> None:
 
 
 def test_body_over_the_byte_limit_is_413_before_parsing(tmp_path, tiny_dir) -> None:
-    from conftest import start_env
+    from service_env import start_env
 
     gen = start_env(tmp_path, tiny_dir, max_body_bytes=4096)
     env = next(gen)

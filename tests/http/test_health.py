@@ -59,7 +59,7 @@ def test_metrics_in_prometheus_text_format(env) -> None:
 
 
 def test_start_refused_on_a_bad_model_with_the_reason(tmp_path, tiny_dir) -> None:
-    from conftest import make_settings
+    from service_env import make_settings
 
     bad = tmp_path / "bad-models"
     shutil.copytree(tiny_dir, bad)
@@ -72,7 +72,7 @@ def test_start_refused_on_a_bad_model_with_the_reason(tmp_path, tiny_dir) -> Non
 
 
 def test_start_refused_when_schema_is_behind_and_auto_upgrade_is_off(tmp_path, tiny_dir) -> None:
-    from conftest import make_settings
+    from service_env import make_settings
 
     from service.app import StartupError
 

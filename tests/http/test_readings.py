@@ -98,7 +98,7 @@ def test_late_reading_closes_a_gap_and_its_windows_are_scored(env) -> None:
 
 
 def test_readings_beyond_the_lateness_limit_are_stored_not_scored(tmp_path, tiny_dir) -> None:
-    from conftest import start_env
+    from service_env import start_env
 
     gen = start_env(tmp_path, tiny_dir, lateness_windows=3)
     env = next(gen)

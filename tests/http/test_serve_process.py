@@ -11,7 +11,7 @@ from pathlib import Path
 
 import httpx
 import pytest
-from conftest import bundled_model_dir
+from service_env import bundled_model_dir
 
 from service.db.keys import create_key
 from service.db.session import Database
