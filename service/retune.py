@@ -11,6 +11,8 @@ endpoints and the dashboard call them with rows read by service/db/thresholds.py
 * `count_overlaps` counts proposed alerts whose span meets at least one past alert with a
   given outcome (closed as confirmed_fault or false_alarm), so an operator reads "3 would
   open, 2 of them where people said false alarm".
+* `propose_rule` builds the rule an operator proposes (levels by value or by budget, rule
+  timing) from the rule in force; the API and the dashboard both use it.
 * `calibration_set` / `expected_false_alarms_per_week` / `levels_for_budget` convert
   between a warning level and false alarms per asset-week on the model's held-out normal
   calibration scores (service.thresholds), the same conversion the trainer used.
