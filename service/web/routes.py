@@ -400,7 +400,7 @@ def alerts_page(
             "tally_hrefs": tally_hrefs,
             "filters": filters,
             "asset_ids": ids,
-            "caption": f"{len(rows)} alerts on this page ({described}); newest first.",
+            "caption": f"{len(rows)} alert{'' if len(rows) == 1 else 's'} on this page ({described}); newest first.",
             "next_href": "/alerts?" + urlencode({**kept, "cursor": next_cursor}) if next_cursor else None,
             "first_href": "/alerts?" + urlencode(kept) if cursor else None,
             "flashes": flashes,

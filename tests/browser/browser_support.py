@@ -64,11 +64,12 @@ class Shots:
         return path
 
     def both(self, page: Any, label: str) -> None:
-        """At 1280x800 and at tablet width, then back to the desktop size."""
-        page.set_viewport_size(DESKTOP)
-        self.take(page, label)
-        page.set_viewport_size(TABLET)
-        self.take(page, label)
+        """At 1280x800 and at tablet width (neither may need sideways scrolling), then back."""
+        for size in (DESKTOP, TABLET):
+            page.set_viewport_size(size)
+            overflow = page.evaluate("document.documentElement.scrollWidth - document.documentElement.clientWidth")
+            assert overflow <= 0, f"{label} at {size['width']} px is {overflow} px too wide"
+            self.take(page, label)
         page.set_viewport_size(DESKTOP)
 
 

@@ -245,3 +245,13 @@ def test_sign_in_refuses_machine_and_unknown_keys(page: Any, served: Served, sho
         page.get_by_text(message).wait_for()
         assert not any(c["name"] == "echowatch_session" for c in page.context.cookies())
     shots.both(page, "signin-refused")
+
+    # Keyboard only: the key field has the focus, Enter signs in, Tab reaches the skip link first.
+    page.goto(f"{served.url}/signin")
+    page.keyboard.type(served.keys["operator"])
+    page.keyboard.press("Enter")
+    page.wait_for_url("**/alerts")
+    page.keyboard.press("Tab")
+    assert page.evaluate("document.activeElement.textContent.trim()") == "Skip to content"
+    page.keyboard.press("Enter")
+    assert page.evaluate("document.activeElement.id") == "content"

@@ -188,3 +188,30 @@ def test_alert_list_filters_and_reports_bad_dates(env: Env) -> None:
     assert 'data-state="unacknowledged">2<' in env.client.get("/alerts").text
     page = env.client.get("/alerts?since=yesterday")
     assert page.status_code == 200 and "Opened from" in page.text and "not a date and time" in page.text
+
+
+def test_alert_list_pages_newest_first_without_repeats(env: Env) -> None:
+    from datetime import datetime, timedelta, timezone
+
+    from service.db import rule_alerts
+
+    open_alert(env)  # makes the asset and its threshold version
+    env.client.cookies.clear()
+    base = datetime(2026, 9, 1, tzinfo=timezone.utc)
+    with env.client.app.state.db.transaction() as s:
+        for i in range(27):  # one active alert per asset at a time: open and return each in turn
+            alert = rule_alerts.open_alert(
+                s, asset_id="pump-01", severity="warning", at=base + timedelta(hours=i), score=5.0,
+                top_channels=[{"channel": "vibration_mm_s", "share": 1.0}], model_id="test-pumps", model_version="1",
+                threshold_version_id=None, details={},
+            )
+            rule_alerts.return_alert(s, alert, at=base + timedelta(hours=i, minutes=30), details={})
+    sign_in(env, "maintenance")
+    ids_in_db = [i for (i,) in env.rows("SELECT id FROM alerts ORDER BY opened_at DESC, id DESC")]
+    first = env.client.get("/alerts")
+    page1 = [int(i) for i in re.findall(r'<tr data-alert-id="(\d+)"', first.text)]
+    older = re.search(r'href="(/alerts\?cursor=[^"]+)" rel="next"', first.text).group(1)
+    second = env.client.get(older.replace("&amp;", "&"))
+    page2 = [int(i) for i in re.findall(r'<tr data-alert-id="(\d+)"', second.text)]
+    assert page1 + page2 == ids_in_db and len(page1) == 25
+    assert 'rel="next"' not in second.text and "« Newest" in second.text
