@@ -12,7 +12,6 @@ another site is refused as well.
 
 from __future__ import annotations
 
-import logging
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -51,8 +50,6 @@ from service.web.session import (
     cookie_options,
     resolve_secret,
 )
-
-log = logging.getLogger("echowatch.web")
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
 PAGE_SIZE = 25
