@@ -129,6 +129,12 @@ def test_threshold_editor_is_for_operators_only(env: Env) -> None:
     r = env.client.post("/assets/pump-01/shelve", data={"hours": "2", "reason": "pump swap", "csrf_token": csrf(env)}, follow_redirects=False)
     assert r.status_code == 303
     assert env.rows("SELECT shelve_reason, shelved_by FROM assets WHERE asset_id = 'pump-01'") == [("pump swap", "test-operator")]
+    page = env.client.get("/assets/pump-01/thresholds")
+    assert "Shelved until" in page.text and "astate-shelved" in page.text
+    r = env.client.post("/assets/pump-01/unshelve", data={"csrf_token": csrf(env)}, follow_redirects=False)
+    assert r.status_code == 303
+    assert env.rows("SELECT shelved_until FROM assets WHERE asset_id = 'pump-01'") == [(None,)]
+    assert [a for (a,) in env.rows("SELECT action FROM audit_log WHERE action LIKE 'asset.%' ORDER BY id")] == ["asset.shelve", "asset.unshelve"]
 
 
 def test_bad_threshold_input_names_the_field_and_stores_nothing(env: Env) -> None:
