@@ -1,0 +1,169 @@
+"""Scoring throughput of the bundled model: the service's ONNX Runtime path vs torch eager.
+
+Prints windows/s at batch 1, 32 and 256 through service.scoring.OnnxScorer (one thread)
+beside torch eager (one thread, inference_mode) on the same windows, and the model's
+achieved FLOP/s (FLOPs per window x windows/s) as a share of single-thread float32
+matrix-multiply FLOP/s measured with numpy in the same run. Goals (issue 2): the service
+path >= 1.5x torch eager at every batch size, and >= 40 % of the matmul rate at its best
+batch size. Each figure is the best of several timed repeats (the machine is shared).
+
+    python bench/scoring.py [--model models/booster-pumps/1] [--seconds 1.0]
+"""
+
+from __future__ import annotations
+
+import os
+
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[_var] = "1"  # single-thread BLAS, set before numpy is imported
+
+import argparse  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
+from collections.abc import Callable  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+from threadpoolctl import threadpool_limits  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from service import grid as G  # noqa: E402
+from service.scoring import DEFAULT_CHUNK, OnnxScorer  # noqa: E402
+
+BATCHES = (1, 32, 256)
+CHUNKS = (16, 32, 64, 128, 256)
+GOAL_SPEEDUP = 1.5
+GOAL_MATMUL_SHARE = 0.40
+
+
+def best_rate(fn: Callable[[], object], items: int, seconds: float, repeats: int = 5) -> float:
+    """Items per second of `fn`, best of `repeats` runs of about seconds/repeats each."""
+    fn()  # warm-up
+    best = 0.0
+    budget = seconds / repeats
+    for _ in range(repeats):
+        n, t0 = 0, time.perf_counter()
+        while True:
+            fn()
+            n += 1
+            dt = time.perf_counter() - t0
+            if dt >= budget:
+                break
+        best = max(best, n * items / dt)
+    return best
+
+
+def matmul_flops(seconds: float) -> tuple[float, int]:
+    """Best single-thread float32 matmul FLOP/s over a few square sizes, and the size."""
+    rng = np.random.default_rng(0)
+    best, best_n = 0.0, 0
+    for n in (128, 256, 512):
+        a = rng.random((n, n), dtype=np.float32)
+        b = rng.random((n, n), dtype=np.float32)
+        rate = best_rate(lambda a=a, b=b: a @ b, 2 * n**3, seconds / 3)
+        if rate > best:
+            best, best_n = rate, n
+    return best, best_n
+
+
+def real_windows(window: int, count: int) -> np.ndarray:
+    from training import demo_data
+
+    demo = demo_data.generate(assets=1, days=3, seed=5, outages=False)
+    a = demo.assets[0]
+    g = G.align(demo.times_s[a], demo.values[a], demo.period_s)
+    filled = G.Grid(g.start, G.fill_gaps(g.values, 5))
+    ends = G.window_ends(filled, window, 1)
+    return G.cut_windows(filled, ends[:count], window)
+
+
+def torch_model(manifest):  # type: ignore[no-untyped-def]
+    """The manifest's architecture rebuilt in torch (seeded weights: speed does not depend on them)."""
+    import torch
+
+    from training.config import ModelConfig
+    from training.model import Reconstructor
+
+    arch = manifest.architecture
+    spec = arch.encoder[0]
+    cfg = ModelConfig(
+        hidden=spec.hidden,
+        layers=len(arch.encoder),
+        latent=arch.latent,
+        bidirectional=spec.bidirectional,
+        merge=spec.merge,
+        score=manifest.score.method,
+    )
+    torch.manual_seed(0)
+    model = Reconstructor(cfg, len(manifest.channels), manifest.window, np.array(manifest.scaler.center), np.array(manifest.scaler.scale))
+    if manifest.score.method == "mahalanobis":
+        model.set_mahalanobis(np.array(manifest.score.error_mean), np.array(manifest.score.error_precision))
+    return model.eval()
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--model", type=Path, default=ROOT / "models" / "booster-pumps" / "1")
+    parser.add_argument("--seconds", type=float, default=1.0, help="timing budget per figure")
+    args = parser.parse_args()
+
+    import torch
+
+    torch.set_num_threads(1)
+    with threadpool_limits(limits=1):
+        scorer = OnnxScorer(args.model, threads=1)
+        m = scorer.manifest
+        flops = m.architecture.flops_per_window
+        windows = real_windows(m.window, max(BATCHES))
+        model = torch_model(m)
+        mm_rate, mm_n = matmul_flops(args.seconds * 1.5)
+
+        def torch_run(x: torch.Tensor) -> None:
+            with torch.inference_mode():
+                model(x)
+
+        rows = []
+        for b in BATCHES:
+            batch = windows[:b]
+            xt = torch.from_numpy(batch)
+            ort_rate = best_rate(lambda batch=batch: scorer.score(batch), b, args.seconds)
+            torch_rate = best_rate(lambda xt=xt: torch_run(xt), b, args.seconds)
+            rows.append((b, ort_rate, torch_rate))
+        chunk_rows = []
+        big = windows[:256]
+        for c in CHUNKS:
+            scorer.chunk_size = c
+            chunk_rows.append((c, best_rate(lambda: scorer.score(big), len(big), args.seconds)))
+        scorer.chunk_size = DEFAULT_CHUNK
+
+    print(f"model {args.model.relative_to(ROOT) if args.model.is_relative_to(ROOT) else args.model}: "
+          f"{m.architecture.parameters} parameters, window {m.window} x {len(m.channels)} channels, "
+          f"{flops / 1e6:.2f} MFLOP per window (gate matmuls and linears, 2 x multiply-adds)")
+    print(f"numpy float32 matmul, 1 thread: {mm_rate / 1e9:.2f} GFLOP/s (best at {mm_n}x{mm_n})")
+    print(f"service path: OnnxScorer(threads=1, chunk_size={DEFAULT_CHUNK}); torch eager: set_num_threads(1), inference_mode")
+    print()
+    print("| batch | ORT windows/s | torch windows/s | ORT / torch | ORT GFLOP/s | share of matmul |")
+    print("|---:|---:|---:|---:|---:|---:|")
+    for b, o, t in rows:
+        print(f"| {b} | {o:,.0f} | {t:,.0f} | {o / t:.2f}x | {o * flops / 1e9:.2f} | {o * flops / mm_rate:.0%} |")
+    print()
+    print("| chunk_size (batch 256) | ORT windows/s |")
+    print("|---:|---:|")
+    for c, r in chunk_rows:
+        print(f"| {c} | {r:,.0f} |")
+    print()
+    speedups = [o / t for _, o, t in rows]
+    best_share = max(o * flops / mm_rate for _, o, _ in rows)
+    ok1 = min(speedups) >= GOAL_SPEEDUP
+    ok2 = best_share >= GOAL_MATMUL_SHARE
+    print(f"goal ORT >= {GOAL_SPEEDUP}x torch eager at every batch: {'met' if ok1 else 'MISSED'} (lowest {min(speedups):.2f}x)")
+    print(f"goal >= {GOAL_MATMUL_SHARE:.0%} of the matmul rate at the best batch: {'met' if ok2 else 'MISSED'} (best {best_share:.0%})")
+    best_chunk = max(chunk_rows, key=lambda r: r[1])[0]
+    print(f"fastest chunk_size at batch 256 on this run: {best_chunk} (service default {DEFAULT_CHUNK})")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
