@@ -32,7 +32,10 @@ __all__ = [
     "nice_ticks",
     "time_ticks",
     "format_number",
+    "decimate",
 ]
+
+MAX_DRAWN_POINTS = 2400  # per line: more than the chart has pixels, so nothing visible is lost
 
 
 # Plot margins in SVG units, shared by the score and readings charts so that stacked
@@ -210,6 +213,32 @@ def _polylines(frame: _Frame, t_ms: Sequence[int], values: Sequence[float | None
     return [" ".join(run) for run in runs]
 
 
+def decimate(
+    t_ms: Sequence[int], values: Sequence[float | None], max_points: int = MAX_DRAWN_POINTS
+) -> tuple[list[int], list[float | None]]:
+    """At most about `max_points` points: per time bucket its lowest and highest value, in
+    time order, so peaks and dips survive; missing values (None) are kept as breaks."""
+    n = len(t_ms)
+    if n <= max_points:
+        return list(t_ms), list(values)
+    buckets = max(1, max_points // 2)
+    out_t: list[int] = []
+    out_v: list[float | None] = []
+    for b in range(buckets):
+        lo, hi = b * n // buckets, (b + 1) * n // buckets
+        idx = [i for i in range(lo, hi) if values[i] is not None and math.isfinite(values[i])]  # type: ignore[arg-type]
+        if not idx:
+            out_t.append(int(t_ms[lo]))
+            out_v.append(None)
+            continue
+        i_min = min(idx, key=lambda i: values[i])  # type: ignore[arg-type, return-value]
+        i_max = max(idx, key=lambda i: values[i])  # type: ignore[arg-type, return-value]
+        for i in sorted({i_min, i_max}):
+            out_t.append(int(t_ms[i]))
+            out_v.append(values[i])
+    return out_t, out_v
+
+
 def _typical_step(t_ms: Sequence[int]) -> float | None:
     if len(t_ms) < 2:
         return None
@@ -342,8 +371,10 @@ def score_chart(
         parts.append(f'<text class="level-label {css}" x="{right + 6:.1f}" y="{ly:.1f}">{escape(short)} {escape(format_number(level))}</text>')
 
     gap_ms = (_typical_step(t_ms) or 0) * 2.5 or None
-    lines = _polylines(frame, t_ms, scores, gap_ms)
-    parts.append(f'<g class="series score-series" data-points="{len(finite)}">')
+    drawn_t, drawn_v = decimate(t_ms, scores)
+    lines = _polylines(frame, drawn_t, drawn_v, gap_ms)
+    n_drawn = sum(1 for v in drawn_v if v is not None and math.isfinite(v))
+    parts.append(f'<g class="series score-series" data-points="{n_drawn}" data-windows="{len(finite)}">')
     for pts in lines:
         parts.append(f'<polyline class="score-line" points="{pts}"/>')
     parts.append("</g>")
@@ -442,7 +473,7 @@ def readings_chart(
         frame = _Frame(
             left=PLOT_LEFT, top=top, width=width - PLOT_LEFT - PLOT_RIGHT, height=panel_height - 8, t0=t0, t1=t1, y0=lo - pad, y1=hi + pad
         )
-        parts.append(f'<g class="panel" data-channel="{escape(tr.name)}" data-points="{len(vals)}">')
+        parts.append(f'<g class="panel" data-channel="{escape(tr.name)}" data-readings="{len(vals)}">')
         parts.append(f'<rect class="plot-bg" x="{frame.left}" y="{frame.top}" width="{frame.width:.1f}" height="{frame.height:.1f}"/>')
         if highlight:
             x0, x1 = frame.x(max(highlight.start_ms, t0)), frame.x(min(highlight.end_ms, t1))
@@ -451,7 +482,8 @@ def readings_chart(
             )
         _value_axis(frame, parts, nice_ticks(frame.y0, frame.y1, 4))
         _time_axis(frame, parts, labels=(i == len(traces) - 1))
-        for pts in _polylines(frame, tr.t_ms, tr.values, (_typical_step(tr.t_ms) or 0) * 3 or None):
+        drawn_t, drawn_v = decimate(tr.t_ms, tr.values)
+        for pts in _polylines(frame, drawn_t, drawn_v, (_typical_step(tr.t_ms) or 0) * 3 or None):
             parts.append(f'<polyline class="reading-line reading-line-{i}" points="{pts}"/>')
         right = frame.left + frame.width
         parts.append(f'<text class="panel-name" x="{right + 8:.1f}" y="{frame.top + 16:.1f}">{escape(_clip(tr.name, 17))}</text>')

@@ -70,7 +70,7 @@ def test_maintenance_filters_opens_acknowledges_and_closes_an_alert(page: Any, s
     for i in range(panels.count()):
         channel = panels.nth(i).get_attribute("data-channel")
         assert panels.nth(i).locator("text.panel-unit").text_content() == units[channel]
-        assert int(panels.nth(i).get_attribute("data-points")) > 10
+        assert int(panels.nth(i).get_attribute("data-readings")) > 10
     shots.both(page, "alert-detail")
 
     note = "Checked on the round <b>bearing</b> warm & noisy"

@@ -120,7 +120,7 @@ def test_readings_chart_one_panel_per_channel_with_unit_and_gaps() -> None:
     root = parse(charts.readings_chart(traces=traces, highlight=Span(t[1], t[4])))
     panels = [g for g in root.iter(f"{SVG}g") if g.get("class") == "panel"]
     assert [p.get("data-channel") for p in panels] == ["discharge_pressure", "bearing_temp"]
-    assert [p.get("data-points") for p in panels] == ["5", "6"]
+    assert [p.get("data-readings") for p in panels] == ["5", "6"]
     units = [t.text for t in root.iter(f"{SVG}text") if t.get("class") == "panel-unit"]
     assert units == ["bar", "degC"]
     first = [[tuple(map(float, p.split(","))) for p in el.get("points").split()] for el in panels[0].iter(f"{SVG}polyline")]
@@ -163,3 +163,30 @@ def test_time_ticks_sit_on_round_utc_times() -> None:
 )
 def test_format_number(value: float, text: str) -> None:
     assert charts.format_number(value) == text
+
+
+def test_decimate_keeps_extremes_in_time_order_and_bounds_the_point_count() -> None:
+    n = 100_000
+    t = [T0 + i * 1000 for i in range(n)]
+    values = [math.sin(i / 500) for i in range(n)]
+    values[12_345] = 50.0  # a one-sample spike
+    values[77_777] = -50.0
+    values[40_000:40_010] = [None] * 10
+    dt, dv = charts.decimate(t, values, max_points=1000)
+    assert len(dt) <= 1000 and dt == sorted(dt)
+    kept = [v for v in dv if v is not None]
+    assert max(kept) == 50.0 and min(kept) == -50.0
+    small_t, small_v = charts.decimate(t[:10], values[:10], max_points=1000)
+    assert small_t == t[:10] and small_v == values[:10]
+
+
+def test_long_series_draws_a_bounded_line_but_counts_every_window() -> None:
+    n = 20_000
+    t = [T0 + i * STEP for i in range(n)]
+    scores = [0.5 + (3.0 if i == 15_000 else 0.0) for i in range(n)]
+    root = parse(charts.score_chart(t_ms=t, scores=scores, warning=1.0, critical=2.0))
+    group = root.find(f".//{SVG}g[@data-windows='{n}']")
+    assert group is not None
+    drawn = sum(len(r) for r in points_of(root, "score-line"))
+    assert drawn == int(group.get("data-points")) <= charts.MAX_DRAWN_POINTS
+    assert min(p[1] for r in points_of(root, "score-line") for p in r) < level_y(root, "level-critical")  # the spike survives
