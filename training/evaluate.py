@@ -31,7 +31,7 @@ import numpy as np
 
 from service.alerting import AlertRule, replay
 from service.grid import Grid, align, cut_windows, fill_gaps, window_ends
-from service.manifest import Manifest, load_manifest
+from service.manifest import Manifest, load_calibration, load_manifest
 from service.scoring import OnnxScorer
 from service.thresholds import CalibrationSet, threshold_for_budget
 from training.baselines import BASELINE_NAMES, Baseline, Scaling, fit_baselines, score_windows
@@ -321,11 +321,15 @@ def evaluate(
     ignore_kinds: Sequence[str] = tuple(DEFAULT_IGNORE_KINDS),
     progress: bool | None = None,
     seed: int = 0,
+    budget_per_week: float | None = None,
 ) -> Evaluation:
     """Score every evaluation window with the model (and baselines), replay the alert rule, measure.
 
     `series` values must be in the manifest's channel order. `baseline_splits` builds the
     baselines' training and calibration data (called only when baselines are asked for).
+    `budget_per_week` re-chooses the model's warning level from its shipped calibration
+    scores for that false-alarm budget (same timing); baselines are calibrated to the same
+    budget. By default the manifest's thresholds and budget are used as they are.
     """
     manifest = load_manifest(Path(model_dir))
     scorer = OnnxScorer(Path(model_dir), manifest=manifest)
@@ -371,6 +375,19 @@ def evaluate(
         deadband_frac=manifest.alert_rule.deadband_frac,
     )
     budget = manifest.thresholds.warning_budget_per_week
+    model_method: str = manifest.thresholds.method
+    if budget_per_week is not None:
+        budget = float(budget_per_week)
+        shipped = load_calibration(Path(model_dir), manifest)
+        cal = CalibrationSet(
+            [np.asarray(c.score, dtype=np.float64) for c in shipped.assets.values()],
+            manifest.thresholds.calibration.span_s,
+            window_period_s,
+        )
+        choice = threshold_for_budget(cal, timing, budget)
+        timing = timing.with_thresholds(choice.threshold)
+        model_method = choice.method
+        notes.append(f"model warning level re-chosen for {budget:g} false alerts per asset-week from its calibration scores")
     baseline_rules: dict[str, tuple[AlertRule, str]] = {}
     if baselines:
         if baseline_splits is None:
@@ -410,7 +427,7 @@ def evaluate(
         bar.close()
 
     model = _result(
-        MODEL_ROW, timing, manifest.thresholds.method, model_scores, labels, events, window_period_s, tol, ignore
+        MODEL_ROW, timing, model_method, model_scores, labels, events, window_period_s, tol, ignore
     )
     results = {
         name: _result(name, rule, method, base_scores[name], labels, events, window_period_s, tol, ignore)

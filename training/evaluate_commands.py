@@ -37,6 +37,13 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
     p.add_argument("--until", dest="end", metavar="TIME", help="evaluate windows ending at/before TIME (default: end of the data)")
     p.add_argument("--tolerance-s", type=float, metavar="S", help="an alert up to S seconds after a fault's end still catches it (default: one window span)")
     p.add_argument("--ignore-kinds", default="maintenance", metavar="KINDS", help="event kinds that are neither faults nor normal (default: maintenance)")
+    p.add_argument(
+        "--warning-budget",
+        type=float,
+        metavar="PER_WEEK",
+        help="re-choose the model's warning level from its calibration scores for this many false alerts per "
+        "asset-week (baselines get the same budget; default: the manifest's thresholds and budget)",
+    )
     p.add_argument("--tz", metavar="ZONE", help="IANA zone of naive timestamps in the files")
     p.add_argument("--units", metavar="CH=UNIT,...", help="units of channels whose names do not say")
     p.add_argument("--seed", type=int, default=0, help="seed of the baselines' sampling and isolation forest")
@@ -73,6 +80,7 @@ def run_evaluate(args: argparse.Namespace) -> int:
             tolerance_s=args.tolerance_s,
             ignore_kinds=[k.strip() for k in args.ignore_kinds.split(",") if k.strip()],
             seed=args.seed,
+            budget_per_week=args.warning_budget,
         )
     except (DataError, ev.EvaluationError, ScoringError, ValueError) as e:
         raise CommandError(f"evaluate: {e}") from e

@@ -186,3 +186,16 @@ def test_missing_channel_is_named(setup: Setup, tmp_path: Path, capsys: pytest.C
     short.write_text("\n".join(",".join(c for i, c in enumerate(line.split(",")) if i != drop) for line in lines[:200]) + "\n")
     code = main(["evaluate", "--model", str(setup.model), "--data", str(short), "--events", str(setup.events)])
     assert code == 2 and "vibration_mm_s" in capsys.readouterr().err
+
+
+def test_a_looser_budget_lowers_the_level(setup: Setup) -> None:
+    data = load_inputs(setup.model, setup.readings, setup.events)
+    m = load_manifest(setup.model)
+    default = evaluate(setup.model, data.series, data.events, progress=False)
+    loose = evaluate(setup.model, data.series, data.events, progress=False, budget_per_week=20.0)
+    assert loose.budget_per_week == 20.0 and default.budget_per_week == m.thresholds.warning_budget_per_week
+    assert loose.model.warning <= default.model.warning
+    high = lambda e: sum(int(np.sum(t.score >= e.model.warning)) for t in e.model.tracks)  # noqa: E731
+    assert high(loose) >= high(default)
+    # The critical level keeps its ratio to the warning level.
+    assert loose.model.critical / loose.model.warning == pytest.approx(m.thresholds.critical / m.thresholds.warning)
