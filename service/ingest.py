@@ -189,10 +189,11 @@ def candidate_ends(
 
 
 def plan_windows(
-    *, ts_s: np.ndarray, values: np.ndarray, candidates: np.ndarray, manifest: Manifest, first_idx: int
+    *, ts_s: np.ndarray, values: np.ndarray, candidates: np.ndarray, manifest: Manifest, first_idx: int | None
 ) -> WindowPlan:
     """Align the stored readings around `candidates` to the grid, fill by the one gap
-    policy, and split the candidates into scoreable windows and gap windows."""
+    policy, and split the candidates into scoreable windows and gap windows (those holding
+    at least one reading; starting at or after `first_idx` when it is given)."""
     w, s, f = manifest.window, manifest.stride, manifest.gap_policy.max_fill_steps
     period = manifest.sample_period_s
     c = len(manifest.channels)
@@ -211,7 +212,7 @@ def plan_windows(
     hi = rest - start + 1
     lo = hi - w
     holds_data = (obs_before[hi] - obs_before[lo]) > 0
-    after_warmup = (rest - w + 1) >= first_idx
+    after_warmup = (rest - w + 1) >= first_idx if first_idx is not None else np.ones(len(rest), dtype=bool)
     gap_ends = rest[holds_data & after_warmup]
     windows = grid.cut_windows(filled, score_ends, w) if len(score_ends) else np.empty((0, w, c), np.float32)
     return WindowPlan(score_ends, windows, gap_ends)
@@ -318,7 +319,7 @@ def _ingest_tx(
     period = m.sample_period_s
     result = IngestResult(asset_id, model.model_id, model.version)
 
-    asset = q.get_asset(session, asset_id=asset_id)
+    asset = q.get_asset(session, asset_id=asset_id, for_update=True)
     if asset is None:
         asset = q.create_asset(session, asset_id=asset_id, model_id=model.model_id)
     threshold = ensure_initial_version(session, asset=asset, manifest=m)
@@ -332,7 +333,7 @@ def _ingest_tx(
     result.threshold_version = threshold.version
 
     # 1. Readings: duplicates, conflicts, inserts.
-    _, prev_max_ms = q.reading_span_ms(session, asset_id=asset_id)
+    prev_max_ms = q.dt_to_ms(asset.last_reading_at) if asset.last_reading_at is not None else None
     stored = q.existing_readings(session, asset_id=asset_id, ts_ms=[int(t) for t in ts_ms])
     new_rows: list[tuple[int, dict[str, Any]]] = []
     new_pos: list[int] = []
@@ -358,26 +359,25 @@ def _ingest_tx(
     if not new_rows:
         return result
 
-    new_ts_s = ts_ms[new_pos] / 1000.0
-    new_idx = grid.grid_index(new_ts_s, period)
-    first_ms, max_ms = q.reading_span_ms(session, asset_id=asset_id)
-    assert first_ms is not None and max_ms is not None  # rows were just inserted
+    new_ms = ts_ms[new_pos]
+    new_idx = grid.grid_index(new_ms / 1000.0, period)
+    max_ms = int(new_ms.max()) if prev_max_ms is None else max(prev_max_ms, int(new_ms.max()))
     max_idx = int(grid.grid_index(max_ms / 1000.0, period))
-    first_idx = int(grid.grid_index(first_ms / 1000.0, period))
     prev_max_idx = int(grid.grid_index(prev_max_ms / 1000.0, period)) if prev_max_ms is not None else None
     cutoff = max_idx - settings.lateness_windows * m.stride
     result.late = int(np.count_nonzero(new_idx < cutoff))
-    newest = max(datetime.fromtimestamp(max_ms / 1000.0, tz=timezone.utc), asset.last_reading_at or datetime.min.replace(tzinfo=timezone.utc))
-    asset.last_reading_at = newest
+    asset.last_reading_at = q.ms_to_dt(max_ms)
 
     # 2. Windows: candidates, minus those already scored, formed from stored readings.
+    # Only a window that was already due (end <= the previous newest reading) can have
+    # been scored or recorded as a gap before; newer ones need no look-up.
     cands = candidate_ends(new_idx=new_idx, prev_max_idx=prev_max_idx, max_idx=max_idx, manifest=m, lateness_windows=settings.lateness_windows)
-    if len(cands) == 0:
-        return result
-    lo, hi = int(cands.min()), int(cands.max())
     key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
-    done = q.window_ends_in(session, table=WindowScore, lo=lo, hi=hi, **key)
-    cands = cands[~np.isin(cands, np.fromiter(done, np.int64, len(done)))] if done else cands
+    was_due = cands[cands <= prev_max_idx] if prev_max_idx is not None else cands[:0]
+    if len(was_due):
+        done = q.window_ends_in(session, table=WindowScore, lo=int(was_due.min()), hi=int(was_due.max()), **key)
+        if done:
+            cands = cands[~np.isin(cands, np.fromiter(done, np.int64, len(done)))]
     if len(cands) == 0:
         return result
     reach_lo = int(cands.min()) - m.window + 1 - m.gap_policy.max_fill_steps
@@ -388,17 +388,25 @@ def _ingest_tx(
     names = model.channels
     ts_all = np.array([t for t, _ in rows], dtype=np.float64) / 1000.0
     vals_all = np.array([[np.nan if v.get(c) is None else v[c] for c in names] for _, v in rows], dtype=np.float64).reshape(len(rows), len(names))
-    plan = plan_windows(ts_s=ts_all, values=vals_all, candidates=cands, manifest=m, first_idx=first_idx)
+    plan = plan_windows(ts_s=ts_all, values=vals_all, candidates=cands, manifest=m, first_idx=None)
 
-    # Gap windows: record once; a gap closed by a late reading drops its record.
-    if len(plan.gap_ends):
-        already = q.window_ends_in(session, table=SkippedWindow, lo=int(plan.gap_ends.min()), hi=int(plan.gap_ends.max()), **key)
-        fresh = [int(e) for e in plan.gap_ends if int(e) not in already]
+    # Gap windows: record once; windows before the asset's first reading are warm-up, not gaps.
+    gap_ends = plan.gap_ends
+    if len(gap_ends):
+        first_ms, _ = q.reading_span_ms(session, asset_id=asset_id)
+        first_idx = int(grid.grid_index(first_ms / 1000.0, period)) if first_ms is not None else max_idx
+        gap_ends = gap_ends[(gap_ends - m.window + 1) >= first_idx]
+    if len(gap_ends):
+        already = q.window_ends_in(session, table=SkippedWindow, lo=int(gap_ends.min()), hi=int(gap_ends.max()), **key)
+        fresh = [int(e) for e in gap_ends if int(e) not in already]
         q.insert_skipped(session, rows=[{**key, "window_end_index": e, "window_end_ms": int(round(e * period * 1000)), "reason": "gap"} for e in fresh])
         result.gap_windows = len(fresh)
     if len(plan.score_ends) == 0:
         return result
-    q.delete_skipped(session, ends=[int(e) for e in plan.score_ends], **key)
+    # A gap closed by a late reading: its window is scored now and its gap record goes.
+    refilled = plan.score_ends[plan.score_ends <= prev_max_idx] if prev_max_idx is not None else plan.score_ends[:0]
+    if len(refilled):
+        q.delete_skipped(session, ends=[int(e) for e in refilled], **key)
 
     # 3. Score every window of the request in one batched call.
     t0 = time.perf_counter()

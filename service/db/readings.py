@@ -34,7 +34,11 @@ def _chunks(items: Sequence[Any], n: int = IN_CHUNK) -> Iterable[Sequence[Any]]:
 # --- assets and the threshold in force -------------------------------------------------
 
 
-def get_asset(session: Session, *, asset_id: str) -> Asset | None:
+def get_asset(session: Session, *, asset_id: str, for_update: bool = False) -> Asset | None:
+    """The asset row; `for_update` locks it for the transaction (PostgreSQL; SQLite's write
+    transaction already excludes other writers), so one asset's batches ingest one at a time."""
+    if for_update:
+        return session.scalars(select(Asset).where(Asset.asset_id == asset_id).with_for_update()).first()
     return session.get(Asset, asset_id)
 
 
@@ -100,7 +104,7 @@ def existing_readings(session: Session, *, asset_id: str, ts_ms: Sequence[int]) 
     found: dict[int, dict[str, Any]] = {}
     unique = sorted(set(ts_ms))
     for part in _chunks(unique):
-        rows = session.execute(
+        rows = session.connection().execute(
             select(Reading.ts_ms, Reading.values).where(Reading.asset_id == asset_id, Reading.ts_ms.in_(part))
         )
         found.update({int(t): v for t, v in rows})
@@ -108,9 +112,9 @@ def existing_readings(session: Session, *, asset_id: str, ts_ms: Sequence[int]) 
 
 
 def insert_readings(session: Session, *, asset_id: str, rows: Sequence[tuple[int, dict[str, Any]]], received_at: datetime) -> None:
-    if rows:
-        session.execute(
-            insert(Reading),
+    if rows:  # Core insert: the ORM's per-row bookkeeping is most of the cost at batch sizes
+        session.connection().execute(
+            insert(Reading.__table__),
             [{"asset_id": asset_id, "ts_ms": t, "values": v, "received_at": received_at} for t, v in rows],
         )
 
@@ -136,7 +140,7 @@ def readings_between(
     )
     if limit is not None:
         q = q.limit(limit)
-    return [(int(t), v) for t, v in session.execute(q)]
+    return [(int(t), v) for t, v in session.connection().execute(q)]
 
 
 # --- window scores and skipped windows ----------------------------------------------------
@@ -146,7 +150,7 @@ def window_ends_in(
     session: Session, *, table: type[WindowScore] | type[SkippedWindow], asset_id: str, model_id: str, model_version: str, lo: int, hi: int
 ) -> set[int]:
     """Window-end grid indexes lo..hi already recorded in `table` for this asset and model version."""
-    rows = session.scalars(
+    rows = session.connection().scalars(
         select(table.window_end_index).where(
             table.asset_id == asset_id,
             table.model_id == model_id,
@@ -160,12 +164,12 @@ def window_ends_in(
 
 def insert_window_scores(session: Session, *, rows: Sequence[dict[str, Any]]) -> None:
     if rows:
-        session.execute(insert(WindowScore), list(rows))
+        session.connection().execute(insert(WindowScore.__table__), list(rows))
 
 
 def insert_skipped(session: Session, *, rows: Sequence[dict[str, Any]]) -> None:
     if rows:
-        session.execute(insert(SkippedWindow), list(rows))
+        session.connection().execute(insert(SkippedWindow.__table__), list(rows))
 
 
 def delete_skipped(session: Session, *, asset_id: str, model_id: str, model_version: str, ends: Sequence[int]) -> None:
@@ -182,7 +186,7 @@ def delete_skipped(session: Session, *, asset_id: str, model_id: str, model_vers
 
 def recent_scores(session: Session, *, asset_id: str, model_id: str, model_version: str, before_index: int, limit: int) -> list[float]:
     """The last `limit` stored scores before window end `before_index`, oldest first."""
-    rows = session.scalars(
+    rows = session.connection().scalars(
         select(WindowScore.score)
         .where(
             WindowScore.asset_id == asset_id,
