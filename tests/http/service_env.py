@@ -85,8 +85,7 @@ def make_settings(tmp_path: Path, model_dir: Path, **overrides: Any) -> Settings
         _env_file=None,
         database_url=pg_server.schema_url(TEST_DATABASE_URL, str(tmp_path)) if TEST_DATABASE_URL else f"sqlite:///{tmp_path / 'echowatch.db'}",
         model_dir=model_dir,
-        retention_days=0,
-        **{"auth_fail_limit": 0, **overrides},  # the failed-auth limit has its own tests (tests/reliability)
+        **{"auth_fail_limit": 0, "retention_days": 0, **overrides},  # the failed-auth limit has its own tests (tests/reliability)
     )
 
 

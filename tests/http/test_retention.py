@@ -1,0 +1,36 @@
+"""Retention: readings, window scores and gap records older than the setting are pruned in
+the background; alerts, their events, thresholds and the audit log are kept."""
+
+from __future__ import annotations
+
+import time
+
+from readings_support import reading, readings
+from service_env import start_env
+
+
+def test_background_pruning_keeps_alerts_and_audit(tmp_path, tiny_dir) -> None:
+    gen = start_env(tmp_path, tiny_dir, retention_days=30, retention_interval_s=0.2)
+    env = next(gen)
+    try:
+        # Old data (2026-10-01) with an alert and a gap, and recent data.
+        # (The pruner may run between these posts, so what was stored is read from the responses.)
+        old = env.post("pump-01", readings([*range(12), *range(16, 30)], 3.0)).json()
+        assert old["accepted"] == 26 and old["alerts_opened"] == 1 and old["gap_windows"] > 0
+        recent_t0 = int(time.time()) // 120 * 120 - 3600
+        env.post("pump-02", [reading(i, t0=recent_t0, jitter_s=0) for i in range(20)])
+        deadline = time.monotonic() + 20
+        while env.count("readings", "asset_id='pump-01'") and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert env.count("readings", "asset_id='pump-01'") == 0
+        assert env.count("window_scores", "asset_id='pump-01'") == 0
+        assert env.count("skipped_windows") == 0
+        # Kept: the recent asset's data, every alert with its events, thresholds, audit.
+        assert env.count("readings", "asset_id='pump-02'") == 20
+        assert env.count("window_scores", "asset_id='pump-02'") > 0
+        assert env.count("alerts") == 1 and env.count("alert_events") >= 1
+        assert env.count("threshold_versions") == 2 and env.count("audit_log") >= 4
+        metrics = env.client.get("/metrics").text
+        assert 'echowatch_retention_pruned_rows_total{table="readings"} 26' in metrics
+    finally:
+        gen.close()
