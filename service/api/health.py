@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
-from fastapi.responses import JSONResponse
+from fastapi.responses import JSONResponse, PlainTextResponse
 
 from service.metrics import CONTENT_TYPE
 
@@ -37,6 +37,6 @@ def readyz(request: Request) -> JSONResponse:
     return JSONResponse({"status": "ready" if ok else "not ready", "checks": checks}, status_code=200 if ok else 503)
 
 
-@router.get("/metrics")
+@router.get("/metrics", response_class=PlainTextResponse)  # documented as text/plain (Prometheus text format), not JSON
 def metrics(request: Request) -> Response:
     return Response(request.app.state.metrics.render(), media_type=CONTENT_TYPE)
