@@ -201,3 +201,16 @@ def test_score_endpoint_scores_and_stores_nothing(env) -> None:
     assert sum(counts(env).values()) == 0
     short = env.client.post("/v1/score", json={"windows": [windows[0][:3].tolist()]}, headers=env.auth("machine"))
     assert short.status_code == 422 and short.json()["error"]["field"] == "body.windows[0]"
+
+
+def test_a_new_model_version_scores_on_with_its_own_calibrated_thresholds(env) -> None:
+    env.post("pump-01", readings(range(12)))
+    tiny_model.build(env.settings.model_dir, version="2", warning=6.0, critical=30.0)
+    r = env.client.post("/v1/models/reload", headers=env.auth("admin"))
+    assert r.status_code == 200, r.text
+    body = env.post("pump-01", readings(range(12, 24))).json()
+    assert body["model_version"] == "2" and body["threshold_version"] == 2
+    assert env.rows("SELECT version, warning, origin, model_version FROM threshold_versions ORDER BY version") == [
+        (1, 4.0, "calibrated", "1"), (2, 6.0, "calibrated", "2")]
+    versions = env.rows("SELECT model_version, COUNT(*) FROM window_scores GROUP BY model_version ORDER BY 1")
+    assert versions == [("1", 3), ("2", 6)]  # v1: ends 6..10; v2 takes over from the next window on
