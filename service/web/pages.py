@@ -16,7 +16,7 @@ from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
 from service.db.models import Alert
-from service.errors import NotFound
+from service.errors import ModelError, NotFound
 from service.models_registry import LoadedModel, ModelRegistry
 from service.retune import calibration_set, expected_false_alarms_per_week, levels_for_budget, preview
 from service.settings import Settings
@@ -31,7 +31,7 @@ TOP_CHANNELS = 3
 def loaded_model(registry: ModelRegistry, model_id: str) -> LoadedModel | None:
     try:
         return registry.get(model_id)
-    except Exception:  # the model is no longer served: pages still show what is stored
+    except ModelError:  # the model is no longer served: pages still show what is stored
         return None
 
 
