@@ -14,7 +14,6 @@ import os
 import re
 import subprocess
 import sys
-import tempfile
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -34,14 +33,14 @@ def _cli(*args: str) -> list[str]:
 
 
 @pytest.fixture(scope="session")
-def served() -> Iterator[Served]:
+def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
     from service.demo import free_port, stop, wait_ready
     from service.replay import AssetSeries, replay
     from training import demo_data
 
     if not any(BUNDLED.glob("*/*/manifest.json")):
         pytest.fail(f"the bundled model under {BUNDLED} is missing (make model)")
-    folder = Path(tempfile.mkdtemp(prefix="echowatch-browser-"))
+    folder = tmp_path_factory.mktemp("served")
     db_path = folder / "echowatch.db"
     port = free_port()
     url = f"http://127.0.0.1:{port}"
