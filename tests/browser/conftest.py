@@ -80,7 +80,7 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
         start_s = (time.time() // 60) * 60 - 86400.0  # the day ends now: the service refuses future readings
         day = demo_data.demo_day(start=start_s)
         series = {a: AssetSeries(day.times_s[a], day.values[a]) for a in REPLAY_ASSETS}
-        summary = replay(url=url, key=keys["machine"], channels=day.channels, series=series, batch=120, progress=False)
+        summary = replay(url=url, key=keys["machine"], channels=day.channels, series=series, batch=240, progress=False)
         served = Served(url, db_path, keys, names, log_path, summary.line())
         opened = served.rows("SELECT COUNT(*) FROM alerts")[0][0]
         assert opened >= 1, f"the demo day opened no alert ({summary.line()}); the browser scenarios need one"
