@@ -116,45 +116,19 @@ def test_echowatch_separates_vigorous_motion_at_least_as_well_as_pca(tmp_path: P
     Scores come from the exported ONNX graph run by ONNX Runtime, as the service runs it.
     """
     pytest.importorskip("torch", reason="training needs the train extra")
-    ort = pytest.importorskip("onnxruntime")
     from sklearn.metrics import roc_auc_score
 
-    from training.baselines import PcaReconstruction, Scaling, score_windows
-    from training.config import FitConfig, ModelConfig
-    from training.dataset import ArrayWindows, fit_scaler
-    from training.export import export_onnx
-    from training.fit import fit, make_model
-    from training.open_data import Cases
+    from training.open_data import basicmotions_run
 
-    train = load_basicmotions("TRAIN").where(NORMAL_CLASSES)
-    test = load_basicmotions("TEST")
-    # Early stopping watches two held-back training cases of each normal class.
-    held = np.zeros(len(train), dtype=bool)
-    for c in NORMAL_CLASSES:
-        held[np.flatnonzero(train.labels == c)[-2:]] = True
-    fit_cases = Cases(train.values[~held], train.labels[~held], train.channels, train.source)
-    val_cases = Cases(train.values[held], train.labels[held], train.channels, train.source)
-    w_fit, _ = case_windows(fit_cases, window=20, stride=2)
-    w_val, _ = case_windows(val_cases, window=20, stride=5)
-    w_test, owner = case_windows(test, window=20, stride=5)
-    abnormal = np.isin(test.labels[owner], ABNORMAL_CLASSES)
-    center, scale = fit_scaler([fit_cases.values.reshape(-1, len(train.channels))], train.channels)
-
-    config = FitConfig(epochs=20, batch_size=32, lr=3e-3, patience=4, seed=7, threads=1)
-    model = make_model(ModelConfig(hidden=16, latent=8), len(train.channels), 20, center, scale, config.seed)
-    fit(model, ArrayWindows(w_fit), ArrayWindows(w_val), config, progress=False)
-    onnx_path = tmp_path / "basicmotions.onnx"
-    export_onnx(model, onnx_path)
-    session = ort.InferenceSession(str(onnx_path), providers=["CPUExecutionProvider"])
-    model_scores = session.run(["score"], {"readings": w_test})[0]
-
-    scaling = Scaling(center, scale)
-    pca = PcaReconstruction().fit(scaling.apply(w_fit))
-    pca_scores = score_windows(pca, scaling, w_test)
+    run = basicmotions_run(tmp_path, epochs=20, seed=7, baselines=("pca",))
+    abnormal = np.isin(run.labels, ABNORMAL_CLASSES)
+    model_scores, pca_scores = run.scores["echowatch"], run.scores["pca"]
+    assert run.fit_windows == 16 * 41  # 16 normal cases x 41 windows of 20 steps every 2
+    assert len(run.labels) == 40 * 17 and abnormal.sum() == 20 * 17
 
     # Reference: sklearn.metrics.roc_auc_score, the issue's threshold of 0.95.
     model_auc = roc_auc_score(abnormal, model_scores)
     pca_auc = roc_auc_score(abnormal, pca_scores)
     assert model_auc >= 0.95, f"echowatch ROC-AUC {model_auc:.4f}"
     assert model_auc >= pca_auc, f"echowatch ROC-AUC {model_auc:.4f} below PCA's {pca_auc:.4f}"
-    assert separation_auc(model_scores, test.labels[owner]) == pytest.approx(model_auc)
+    assert run.auc()["echowatch"] == pytest.approx(model_auc)
