@@ -69,6 +69,8 @@ class Shots:
             page.set_viewport_size(size)
             overflow = page.evaluate("document.documentElement.scrollWidth - document.documentElement.clientWidth")
             assert overflow <= 0, f"{label} at {size['width']} px is {overflow} px too wide"
+            clipped = page.evaluate("[...document.querySelectorAll('.table-wrap')].filter(w => w.scrollWidth > w.clientWidth).length")
+            assert clipped == 0, f"{label} at {size['width']} px: {clipped} table(s) wider than the page"
             self.take(page, label)
         page.set_viewport_size(DESKTOP)
 
