@@ -151,8 +151,19 @@ def _guard(request: Request, *, role: str = "maintenance", csrf: str | None = No
                 "Form refused",
                 "This form did not carry a valid token from this dashboard (it may be from an old page, or from another site). "
                 "Reload the page and try again.",
+                _page_of(request.url.path),
             )
     return user, None
+
+
+def _page_of(post_path: str) -> str:
+    """The page a form was posted from: /alerts/7/note -> /alerts/7, /assets/p1/shelve -> its thresholds page."""
+    parts = post_path.strip("/").split("/")
+    if len(parts) >= 2 and parts[0] == "alerts" and parts[1].isdigit():
+        return f"/alerts/{parts[1]}"
+    if len(parts) >= 2 and parts[0] == "assets":
+        return f"/assets/{parts[1]}/thresholds"
+    return "/alerts"
 
 
 def _after_post(path: str, done: str, anchor: str = "") -> RedirectResponse:
