@@ -8,7 +8,7 @@ scores) inserted with the sqlite3 module, one transaction per batch.
 Goals (issue 3): HTTP ingest >= 0.5x the floor; p99 request latency <= 4x p50.
 Bounded: a fixed amount of demo data, loopback only, the server is stopped at the end.
 
-    python bench/ingest.py [--assets 6] [--hours 12] [--batch 60] [--clients 4] [--workers 2]
+    python bench/ingest.py [--assets 6] [--hours 12] [--batch 60] [--clients 4] [--workers 1]
 """
 
 from __future__ import annotations
@@ -19,6 +19,7 @@ import math
 import os
 import sqlite3
 import statistics
+import subprocess
 import sys
 import tempfile
 import threading
@@ -117,7 +118,7 @@ def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: in
     port = free_port()
     url = f"http://127.0.0.1:{port}"
     log = open(tmp / "serve.log", "wb")
-    proc = __import__("subprocess").Popen(echowatch_argv("serve", "--port", str(port), "--workers", str(workers), "--log-level", "warning"),
+    proc = subprocess.Popen(echowatch_argv("serve", "--port", str(port), "--workers", str(workers), "--log-level", "warning"),
                                           env=env, stdout=log, stderr=log)
     try:
         wait_ready(url, proc, timeout_s=180)
@@ -175,7 +176,7 @@ def main() -> int:
     p.add_argument("--hours", type=float, default=12.0)
     p.add_argument("--batch", type=int, default=60, help="readings per request (60 = an hour of one-minute readings)")
     p.add_argument("--clients", type=int, default=4)
-    p.add_argument("--workers", type=int, default=2)
+    p.add_argument("--workers", type=int, default=1, help="1 suits SQLite (one writer); more pay off on PostgreSQL")
     args = p.parse_args()
 
     channels, batches, demo = make_batches(args.assets, args.hours, args.batch)
