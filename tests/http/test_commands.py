@@ -119,3 +119,20 @@ def test_replay_does_not_retry_a_refused_batch(env) -> None:
     with pytest.raises(ReplayError, match=r"refused the batch \(422\).*missing channel") :
         replay(url="http://testserver", key=env.keys["machine"], channels=["flow_m3h", "suction_kpa", "discharge_kpa", "current_a", "bearing_temp_c"],
                series=series, progress=False, client=env.client, sleep=lambda s: pytest.fail("retried a 422"))
+
+
+def test_replay_speed_paces_batches_by_data_time(env) -> None:
+    import tiny_model
+
+    t = 1.7908128e9 + 60.0 * np.arange(40)
+    vals = np.tile(np.array(tiny_model.CENTER), (40, 1)) + np.arange(40)[:, None] * 0.01
+    waits: list[float] = []
+    summary = replay(url="http://testserver", key=env.keys["machine"], channels=tiny_model.CHANNELS,
+                     series={"pump-01": AssetSeries(t, vals)}, batch=10, speed=600.0, progress=False,
+                     client=env.client, sleep=waits.append)
+    assert summary.accepted == 40 and summary.requests == 4
+    # Batches start 10 minutes of data apart, so at 600x real time batch k is due k seconds
+    # after the start; the (recorded, not slept) wait is that less the time spent so far.
+    assert len(waits) == 3
+    assert all(0 < w <= k for k, w in enumerate(waits, start=1))
+    assert all(0 < b - a <= 1.0 for a, b in zip(waits, waits[1:]))
