@@ -24,7 +24,7 @@ VERSION = "1"
 # thread: on the shared two-core machine a training step of this small LSTM took 0.046 s
 # with one thread and 0.38 s with two (oversubscribed OpenMP threads spin and wait), and a
 # fixed thread count keeps the float reduction order, hence the weights, reproducible.
-BUNDLE_FIT = FitConfig(epochs=30, max_train_windows=20000, patience=4, threads=1)
+BUNDLE_FIT = FitConfig(epochs=12, max_train_windows=20000, patience=3, threads=1)
 
 
 def bundle_config() -> TrainConfig:
