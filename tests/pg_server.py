@@ -122,6 +122,11 @@ def schema_url(base_url: str, key: str) -> str:
     try:
         with engine.begin() as conn:
             conn.execute(text(f"CREATE SCHEMA IF NOT EXISTS {name}"))
+            # Tests write their checking SQL for SQLite; give PostgreSQL SQLite's round(real, digits).
+            conn.execute(text(
+                f"CREATE OR REPLACE FUNCTION {name}.round(double precision, integer) RETURNS double precision "
+                "AS $$ SELECT pg_catalog.round($1::numeric, $2)::double precision $$ LANGUAGE SQL IMMUTABLE"
+            ))
     finally:
         engine.dispose()
     sep = "&" if "?" in base_url else "?"
