@@ -5,6 +5,7 @@ ambiguous when several test folders have one)."""
 
 from __future__ import annotations
 
+import json
 import os
 import sys
 from collections.abc import Iterator
@@ -51,9 +52,11 @@ class Env:
             with engine.connect() as conn:
                 if engine.dialect.name != "sqlite":
                     sql = sql.replace("%", "%%").replace("?", "%s")
-                return [tuple(r) for r in conn.exec_driver_sql(sql, tuple(params)).fetchall()]
+                rows = conn.exec_driver_sql(sql, tuple(params)).fetchall()
         finally:
             engine.dispose()
+        # SQLite hands JSON columns back as text, PostgreSQL's driver parses them; tests compare text.
+        return [tuple(json.dumps(v) if isinstance(v, (dict, list)) else v for v in r) for r in rows]
 
     def execute(self, sql: str, *params: Any) -> None:
         """A raw SQL statement that returns no rows (`?` placeholders), committed."""
