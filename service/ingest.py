@@ -279,9 +279,13 @@ def ingest(
     if not readings:
         raise BadInput("body.readings: give at least one reading", field="body.readings")
     now = now or datetime.now(timezone.utc)
-    with db.session() as s:
-        asset = check_asset_access(s, caller=caller, asset_id=asset_id)
-    model = resolve_model(registry, asset, asset_id)
+    bound = registry.bound_model(asset_id) if caller.may_use_asset(asset_id) else None
+    if bound is not None:
+        model = registry.get(bound)
+    else:
+        with db.session() as s:
+            asset = check_asset_access(s, caller=caller, asset_id=asset_id)
+        model = resolve_model(registry, asset, asset_id)
     ts_ms, values, dicts = validate_batch(
         readings, channels=model.channels, now_s=now.timestamp(), future_tolerance_s=settings.future_tolerance_s
     )
@@ -290,6 +294,7 @@ def ingest(
             with db.transaction() as session:
                 result = _ingest_tx(session, model=model, settings=settings, metrics=metrics, asset_id=asset_id,
                                     ts_ms=ts_ms, values=values, dicts=dicts, now=now)
+            registry.remember_binding(asset_id, model.model_id)
             break
         except IntegrityError as e:
             if attempt == MAX_ATTEMPTS:
@@ -381,10 +386,16 @@ def _ingest_tx(
     if len(cands) == 0:
         return result
     reach_lo = int(cands.min()) - m.window + 1 - m.gap_policy.max_fill_steps
-    rows = q.readings_between(
-        session, asset_id=asset_id,
-        start_ms=int(math.floor((reach_lo - 0.5) * period * 1000)), end_ms=int(math.ceil((int(cands.max()) + 0.5) * period * 1000)),
-    )
+    start_ms = int(math.floor((reach_lo - 0.5) * period * 1000))
+    end_ms_excl = int(math.ceil((int(cands.max()) + 0.5) * period * 1000))
+    first_new_ms = int(new_ms.min())
+    if prev_max_ms is not None and prev_max_ms < first_new_ms and not stored:
+        # A pure append: nothing is stored from the batch's first reading on, so only the
+        # look-back comes from the database and the rest is this batch.
+        rows = q.readings_between(session, asset_id=asset_id, start_ms=start_ms, end_ms=min(first_new_ms, end_ms_excl))
+        rows += [(t, v) for t, v in sorted(new_rows) if start_ms <= t < end_ms_excl]
+    else:
+        rows = q.readings_between(session, asset_id=asset_id, start_ms=start_ms, end_ms=end_ms_excl)
     names = model.channels
     ts_all = np.array([t for t, _ in rows], dtype=np.float64) / 1000.0
     vals_all = np.array([[np.nan if v.get(c) is None else v[c] for c in names] for _, v in rows], dtype=np.float64).reshape(len(rows), len(names))

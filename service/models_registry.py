@@ -113,6 +113,9 @@ class ModelRegistry:
         self._lock = threading.Lock()
         self._served: dict[str, LoadedModel] = {}
         self._available: dict[str, list[str]] = {}
+        # asset id -> model id of assets this process has seen; a binding never changes once
+        # the asset exists, so a hit saves the ingest path a database round trip.
+        self._bound: dict[str, str] = {}
 
     def _build(self) -> tuple[dict[str, LoadedModel], dict[str, list[str]]]:
         found = discover(self.model_dir)
@@ -160,6 +163,15 @@ class ModelRegistry:
                 return self._served[model_id]
             except KeyError:
                 raise ModelError(f"model {model_id!r} is not loaded; the registry serves {sorted(self._served)}") from None
+
+    def bound_model(self, asset_id: str) -> str | None:
+        """The model id an existing asset was bound to, if this process has seen it."""
+        return self._bound.get(asset_id)
+
+    def remember_binding(self, asset_id: str, model_id: str) -> None:
+        if len(self._bound) > 100_000:
+            self._bound.clear()
+        self._bound[asset_id] = model_id
 
     def model_for_asset(self, asset_id: str) -> str | None:
         """The model id a new asset binds to, or None when the choice is ambiguous."""
