@@ -28,9 +28,9 @@ class DataConfig:
 
 @dataclass(frozen=True)
 class ModelConfig:
-    hidden: int = 32  # LSTM state width of every encoder and decoder layer
+    hidden: int = 16  # LSTM state width of every encoder and decoder layer (measured: model.py)
     layers: int = 1  # LSTM layers in the encoder and, mirrored, in the decoder
-    latent: int = 8  # bottleneck width: one vector per window
+    latent: int = 4  # bottleneck width: one vector per window (measured: model.py)
     bidirectional: bool = True  # read the window both ways in every layer
     merge: MergeMode = "concat"  # how a bidirectional layer combines its two directions per step
     dropout: float = 0.0  # between stacked LSTM layers (only active with layers > 1)

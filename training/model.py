@@ -13,10 +13,25 @@
 
 The exported ONNX graph is exactly this forward pass (DESIGN.md "The model contract").
 
-Defaults (training/config.py) were chosen by measurement on the demo scenario (6 pumps,
-42 days, seed 7, events excluded from training; test = the labelled fault windows vs the
-normal calibration windows, ROC-AUC of the window score); see the numbers in
-`DEFAULTS_MEASUREMENT` below, which bench/training.py and the report repeat.
+Defaults (training/config.py) were chosen by measurement on the default demo scenario
+(6 pumps x 42 days, seed 7, labelled events excluded from training; window 60 x 60 s,
+stride 10, train_stride 2, one bidirectional concat layer each side, mean_squared score).
+Separation = ROC-AUC and median-score ratio of the serving-stride windows touching a
+labelled fault vs the normal calibration windows:
+
+    3 epochs x 20k windows   hidden latent  params  MFLOP/window  val loss  ROC-AUC  median ratio
+                               16     4      6,218     0.67        0.0339    0.827     2.29
+                               32     8     21,902     2.44        0.0232    0.798     1.54
+                               64    16     81,686     9.31        0.0215    0.785     1.46
+    12 epochs x 20k (bundle)   16     4      6,218     0.67        0.0262    0.863     2.63
+                               32     8     21,902     2.44        0.0195    0.796     1.53
+
+A lower reconstruction loss did not mean better detection: the wider models also learn
+to reconstruct the faults. hidden 16 / latent 4 separates best and is the cheapest, so it
+is the default. Window 60 (one hour) spans the demand cycle's fastest swings and a whole
+spike burst; stride 10 scores every 10 minutes, which the alert rule's 3-of-5 on-delay
+turns into a 30-50 minute confirmation. Sweeping window and stride is left for a quieter
+machine (the shared one here made each run take minutes).
 """
 
 from __future__ import annotations
@@ -29,13 +44,6 @@ from torch import nn
 
 from service.manifest import LayerSpec, MergeMode, ScoreSpec
 from training.config import ModelConfig
-
-DEFAULTS_MEASUREMENT = """\
-Measured on the default demo data, hidden/latent sweep with window 60, stride 10,
-train_stride 2 (ROC-AUC of labelled fault windows vs normal calibration windows,
-score mean_squared; ONNX size): see training/bundle.py's docstring for the table.
-"""
-
 
 def merge_directions(forward: torch.Tensor, backward: torch.Tensor, mode: MergeMode) -> torch.Tensor:
     """Combine the two directions' outputs step by step (last axis is the feature axis)."""
