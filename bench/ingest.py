@@ -182,7 +182,9 @@ def main() -> int:
     channels, batches, demo = make_batches(args.assets, args.hours, args.batch)
     with tempfile.TemporaryDirectory(prefix="echowatch-bench-") as tmp_s:
         tmp = Path(tmp_s)
-        floor = floor_run(args.model, channels, batches, tmp / "floor.db")
+        # The machine may be shared: the floor is the best of three runs (fresh file each), which
+        # makes the ratio below conservative.
+        floor = min((floor_run(args.model, channels, batches, tmp / f"floor{i}.db") for i in range(3)), key=lambda f: f["seconds"])
         http = http_run(args.model, batches, args.clients, args.workers, tmp)
 
     lat = http["latencies"]
@@ -195,7 +197,7 @@ def main() -> int:
           f"{len(batches)} batches of {args.batch}; model {args.model.parent.name}/{args.model.name}; "
           f"HTTP: {args.clients} clients, {args.workers} worker(s), SQLite WAL; cores {os.cpu_count()}")
     print(f"{'path':34s} {'readings/s':>11s} {'windows/s':>10s} {'windows':>8s} {'seconds':>8s}")
-    print(f"{'floor: ORT + sqlite3, 1 thread':34s} {floor_rate:11.0f} {floor['windows'] / floor['seconds']:10.1f} {floor['windows']:8d} {floor['seconds']:8.2f}")
+    print(f"{'floor: ORT + sqlite3 (best of 3)':34s} {floor_rate:11.0f} {floor['windows'] / floor['seconds']:10.1f} {floor['windows']:8d} {floor['seconds']:8.2f}")
     print(f"{'HTTP: echowatch serve':34s} {http_rate:11.0f} {http['windows'] / http['seconds']:10.1f} {http['windows']:8d} {http['seconds']:8.2f}")
     print(f"request latency p50 {p50 * 1000:.1f} ms, p90 {pct(lat, 0.9) * 1000:.1f} ms, p99 {p99 * 1000:.1f} ms, "
           f"max {max(lat) * 1000:.1f} ms, mean {statistics.mean(lat) * 1000:.1f} ms over {len(lat)} requests")
