@@ -123,14 +123,13 @@ def test_images_install_like_the_makefile_and_the_service_has_no_torch() -> None
 
 
 @pytest.fixture
-def compose_database(tmp_path: Path) -> Any:
+def compose_database(tmp_path: Path, request: pytest.FixtureRequest) -> Any:
     if support.pg_server.available():
-        for base in support.pg_base_url():
-            url = support.pg_server.schema_url(base, f"compose-{tmp_path}")
-            try:
-                yield url
-            finally:
-                support.pg_server.drop_schema(url)
+        url = support.pg_server.schema_url(request.getfixturevalue("pg_base"), f"compose-{tmp_path}")
+        try:
+            yield url
+        finally:
+            support.pg_server.drop_schema(url)
     else:
         yield f"sqlite:///{tmp_path / 'compose.db'}"
 

@@ -24,19 +24,19 @@ READINGS = 360
 BATCH = 15
 
 
-@pytest.fixture(params=["sqlite", "postgresql"])
+NO_PG = "PostgreSQL server programs are not installed (make system-deps installs them)"
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.skipif(not support.pg_server.available(), reason=NO_PG))])
 def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
     if request.param == "sqlite":
         yield f"sqlite:///{tmp_path / 'shared.db'}"
         return
-    if not support.pg_server.available():
-        pytest.skip("PostgreSQL server programs are not installed (make system-deps installs them)")
-    for base in support.pg_base_url():
-        url = support.pg_server.schema_url(base, f"replicas-{tmp_path}")
-        try:
-            yield url
-        finally:
-            support.pg_server.drop_schema(url)
+    url = support.pg_server.schema_url(request.getfixturevalue("pg_base"), f"replicas-{tmp_path}")
+    try:
+        yield url
+    finally:
+        support.pg_server.drop_schema(url)
 
 
 def test_replicas_score_each_window_once_and_open_one_alert(tmp_path: Path, database_url: str) -> None:
