@@ -7,6 +7,7 @@ read transaction tries to upgrade. Other engines use their own defaults.
 from __future__ import annotations
 
 import contextlib
+import os
 import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -14,6 +15,11 @@ from pathlib import Path
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event, make_url, text
+
+try:
+    import fcntl
+except ImportError:  # not on Windows: writers there meet SQLite's busy timeout
+    fcntl = None  # type: ignore[assignment]
 from sqlalchemy.orm import Session, sessionmaker
 
 _BEGIN_OPTION = "echowatch_begin"
@@ -60,6 +66,39 @@ def _sqlite_events(engine: Engine, busy_timeout_ms: int) -> None:
         conn.exec_driver_sql(f"BEGIN {mode}")
 
 
+class _WriterLock:
+    """Thread lock plus, where the platform has fcntl and the database is a file, an
+    exclusive flock on `<database>.writer-lock`."""
+
+    def __init__(self, db_file: Path | None) -> None:
+        self._thread_lock = threading.Lock()
+        self._path = db_file.with_name(db_file.name + ".writer-lock") if db_file is not None and fcntl is not None else None
+        self._fd: int | None = None
+
+    def __enter__(self) -> None:
+        self._thread_lock.acquire()
+        try:
+            if self._path is not None:
+                if self._fd is None:
+                    self._fd = os.open(self._path, os.O_RDWR | os.O_CREAT, 0o600)
+                fcntl.flock(self._fd, fcntl.LOCK_EX)
+        except BaseException:
+            self._thread_lock.release()
+            raise
+
+    def __exit__(self, *exc: object) -> None:
+        try:
+            if self._fd is not None:
+                fcntl.flock(self._fd, fcntl.LOCK_UN)
+        finally:
+            self._thread_lock.release()
+
+    def close(self) -> None:
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
+
+
 class Database:
     """One engine and its two session factories: `session()` for reads, `write()` for writes."""
 
@@ -69,9 +108,13 @@ class Database:
         self._read = sessionmaker(self.engine, expire_on_commit=False)
         self._write = sessionmaker(self.engine.execution_options(**{_BEGIN_OPTION: "IMMEDIATE"}), expire_on_commit=False)
         # SQLite has one writer at a time and its busy handler waits by sleeping (up to 100 ms
-        # a step), which makes queued writers slow and latency tails long. Writers of this
-        # process queue on a lock instead; only writers of other processes meet the busy wait.
-        self._write_lock = threading.Lock() if self.is_sqlite else contextlib.nullcontext()
+        # a step), which makes queued writers slow and latency tails long. Writers queue on a
+        # lock instead: a thread lock within the process and, for a database file, an flock on
+        # a file beside it across processes (serve --workers N); the busy timeout stays as the
+        # backstop for writers outside the service.
+        self._write_lock: contextlib.AbstractContextManager[object] = contextlib.nullcontext()
+        if self.is_sqlite:
+            self._write_lock = _WriterLock(sqlite_file(url))
 
     @property
     def is_sqlite(self) -> bool:
@@ -96,3 +139,5 @@ class Database:
 
     def dispose(self) -> None:
         self.engine.dispose()
+        if isinstance(self._write_lock, _WriterLock):
+            self._write_lock.close()
