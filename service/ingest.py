@@ -30,6 +30,10 @@ Decisions (the numbers are settings, service/settings.py):
   only in this process. A late window filling a hole behind that point is stored but does
   not move the rule. A shelved asset (shelved_until in the future by the server clock)
   opens no alert; an active one may still escalate and return.
+* Concurrency: one asset's batches ingest one at a time (its row is locked FOR UPDATE on
+  PostgreSQL; SQLite has a single writer). The UNIQUE keys on readings, window scores and
+  the active alert turn any remaining race into an IntegrityError, and the whole request
+  is retried (MAX_ATTEMPTS), which idempotency makes safe.
 * The rule's levels and timing are the asset's newest threshold version; when the served
   model version changes, a new calibrated version is created from the new manifest. The
   asset's `rule_override` (on_k, on_n, off_m, deadband_frac) applies on top.
