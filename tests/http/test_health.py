@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import shutil
 
 import pytest
@@ -71,14 +72,17 @@ def test_start_refused_on_a_bad_model_with_the_reason(tmp_path, tiny_dir) -> Non
             pass
 
 
+@pytest.mark.skipif(
+    bool(os.environ.get("ECHOWATCH_TEST_DATABASE_URL")),
+    reason="needs a fresh database file; the PostgreSQL run shares one server",
+)
 def test_start_refused_when_schema_is_behind_and_auto_upgrade_is_off(tmp_path, tiny_dir) -> None:
     from service_env import make_settings
 
     from service.app import StartupError
 
     settings = make_settings(tmp_path, tiny_dir, auto_upgrade=False)
-    if not settings.database_url.startswith("sqlite"):
-        pytest.skip("needs a fresh database file")  # the PostgreSQL run shares one server
+    assert settings.database_url.startswith("sqlite")
     with pytest.raises(StartupError, match="echowatch db upgrade"):
         with TestClient(create_app(settings)):
             pass
