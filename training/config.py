@@ -66,7 +66,11 @@ class FitConfig:
     loss: LossKind = "mse"  # training loss in scaled units
     huber_delta: float = 1.0  # only for loss="huber"
     seed: int = 7  # torch, numpy and batch order: same seed, same model
-    threads: int = 2  # torch.set_num_threads; the machines here have 2 cores
+    # torch.set_num_threads. Measured (bench/training.py, default model, 1 M-row fleet, the
+    # shared 2-core machine at load ~3): 1,937 training windows/s with 1 thread, 349 with 2
+    # (OpenMP threads of this small LSTM mostly wait on each other). --threads 2 is there
+    # for a wider model on an idle machine.
+    threads: int = 1
     max_train_windows: int | None = None  # per epoch, a fixed-seed subsample (None = all)
     max_validation_windows: int = 4000  # validation loss on a fixed subset (all when fewer)
 
