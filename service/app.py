@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import gc
 import importlib
 import logging
 import time
@@ -19,6 +20,7 @@ from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Any
 
+import anyio.to_thread
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 
@@ -95,6 +97,17 @@ async def _retention_loop(app: FastAPI) -> None:
 def _prune_once(db: Database, cutoff: datetime, prune: Any) -> dict[str, int]:
     with db.transaction() as session:
         return prune(session, before=cutoff)
+
+
+async def _warm_up(db: Database) -> None:
+    """Pay once, before the service reports ready, what the first requests would otherwise
+    pay: the thread pool's first use (anyio imports its backend then) and a pooled database
+    connection. Then move every object start-up made (modules, models, the app) into the
+    collector's permanent generation (gc.freeze), so the full collections that request
+    garbage triggers no longer traverse them (measured: bench/ingest.py). The lifespan's end
+    unfreezes them, so an app that is shut down (tests make many) can still be collected."""
+    await anyio.to_thread.run_sync(db.ping)
+    gc.freeze()
 
 
 class BodyLimit:
@@ -193,6 +206,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             raise
         app.state.db = db
         app.state.started_at = datetime.now(timezone.utc)
+        await _warm_up(db)
         task = asyncio.create_task(_retention_loop(app)) if settings.retention_days > 0 else None
         try:
             yield
@@ -202,6 +216,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 with contextlib.suppress(asyncio.CancelledError):
                     await task
             db.dispose()
+            gc.unfreeze()
 
     app = FastAPI(
         title="echowatch",
