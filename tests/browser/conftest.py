@@ -89,7 +89,9 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
         stop(proc)
 
 
-@pytest.fixture(scope="session")
+# Module scope: the sync Playwright API keeps an event loop running in the main thread
+# until it stops, which would break later tests that run their own loop (asyncio.run).
+@pytest.fixture(scope="module")
 def browser() -> Iterator[Any]:
     from playwright.sync_api import sync_playwright
 

@@ -4,6 +4,7 @@ addresses, health checks, and lifts once the failures age out of the window."""
 from __future__ import annotations
 
 import asyncio
+from concurrent.futures import ThreadPoolExecutor
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -52,7 +53,10 @@ def _call(mw: FailedAuthLimit, address: str, path: str = "/v1/assets") -> int:
         sent.append(msg)
 
     scope = {"type": "http", "method": "GET", "path": path, "headers": [], "client": (address, 5000)}
-    asyncio.run(mw(scope, receive, send))
+    # A thread of its own, so a loop already running in this thread (e.g. left by another
+    # test's library) cannot refuse asyncio.run.
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        pool.submit(asyncio.run, mw(scope, receive, send)).result()
     return int(sent[0]["status"])
 
 
