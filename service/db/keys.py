@@ -11,8 +11,10 @@ import hmac
 import re
 import secrets
 from datetime import datetime, timezone
+from functools import cache
+from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import Select, bindparam, select
 from sqlalchemy.orm import Session
 
 from service.db.models import ROLES, ApiKey, AuditLog
@@ -50,10 +52,16 @@ def create_key(
     return key, row
 
 
+@cache
+def _by_hash() -> Select[Any]:
+    # Built once and reused: every request with a key asks.
+    return select(ApiKey).where(ApiKey.key_hash == bindparam("key_hash"))
+
+
 def find_key(session: Session, *, key: str) -> ApiKey | None:
     """The unrevoked key row for this key, or None."""
     digest = hash_key(key)
-    row = session.scalars(select(ApiKey).where(ApiKey.key_hash == digest)).first()
+    row = session.scalars(_by_hash(), {"key_hash": digest}).first()
     if row is None or row.revoked_at is not None:
         return None
     if not hmac.compare_digest(row.key_hash, digest):

@@ -7,10 +7,11 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
+from functools import cache
 from datetime import datetime, timezone
 from typing import Any
 
-from sqlalchemy import delete, func, insert, select
+from sqlalchemy import Integer, Select, bindparam, delete, func, insert, select
 from sqlalchemy.orm import Session
 
 from service.db.models import Alert, Asset, Reading, SkippedWindow, ThresholdVersion, WindowScore
@@ -31,6 +32,64 @@ def _chunks(items: Sequence[Any], n: int = IN_CHUNK) -> Iterable[Sequence[Any]]:
         yield items[i : i + n]
 
 
+# The ingest path's statements are built once, with bound parameters, and reused: building a
+# select (operator overloading, coercions, its cache key) costs about as much as running it
+# on SQLite, and the ingest path runs a dozen per request (bench/ingest.py).
+
+
+@cache
+def _asset_for_update() -> Select[Any]:
+    return select(Asset).where(Asset.asset_id == bindparam("asset_id")).with_for_update()
+
+
+@cache
+def _active_alert() -> Select[Any]:
+    return select(Alert).where(Alert.active_key == bindparam("asset_id"))
+
+
+@cache
+def _existing_readings() -> Select[Any]:
+    return select(Reading.ts_ms, Reading.values).where(
+        Reading.asset_id == bindparam("asset_id"), Reading.ts_ms.in_(bindparam("ts_ms", expanding=True))
+    )
+
+
+@cache
+def _readings_between(limited: bool) -> Select[Any]:
+    q = (
+        select(Reading.ts_ms, Reading.values)
+        .where(Reading.asset_id == bindparam("asset_id"), Reading.ts_ms >= bindparam("start_ms"), Reading.ts_ms < bindparam("end_ms"))
+        .order_by(Reading.ts_ms)
+    )
+    return q.limit(bindparam("limit", type_=Integer)) if limited else q
+
+
+@cache
+def _window_ends_in(table: type[WindowScore] | type[SkippedWindow]) -> Select[Any]:
+    return select(table.window_end_index).where(
+        table.asset_id == bindparam("asset_id"),
+        table.model_id == bindparam("model_id"),
+        table.model_version == bindparam("model_version"),
+        table.window_end_index >= bindparam("lo"),
+        table.window_end_index <= bindparam("hi"),
+    )
+
+
+@cache
+def _recent_scores() -> Select[Any]:
+    return (
+        select(WindowScore.score)
+        .where(
+            WindowScore.asset_id == bindparam("asset_id"),
+            WindowScore.model_id == bindparam("model_id"),
+            WindowScore.model_version == bindparam("model_version"),
+            WindowScore.window_end_index < bindparam("before_index"),
+        )
+        .order_by(WindowScore.window_end_index.desc())
+        .limit(bindparam("limit", type_=Integer))
+    )
+
+
 # --- assets and the threshold in force -------------------------------------------------
 
 
@@ -38,7 +97,7 @@ def get_asset(session: Session, *, asset_id: str, for_update: bool = False) -> A
     """The asset row; `for_update` locks it for the transaction (PostgreSQL; SQLite's write
     transaction already excludes other writers), so one asset's batches ingest one at a time."""
     if for_update:
-        return session.scalars(select(Asset).where(Asset.asset_id == asset_id).with_for_update()).first()
+        return session.scalars(_asset_for_update(), {"asset_id": asset_id}).first()
     return session.get(Asset, asset_id)
 
 
@@ -93,7 +152,7 @@ def add_threshold_version(
 
 def active_alert(session: Session, *, asset_id: str) -> Alert | None:
     """The alert the rule holds open for this asset (UNIQUE active_key), if any."""
-    return session.scalars(select(Alert).where(Alert.active_key == asset_id)).first()
+    return session.scalars(_active_alert(), {"asset_id": asset_id}).first()
 
 
 # --- readings ------------------------------------------------------------------------------
@@ -103,10 +162,9 @@ def existing_readings(session: Session, *, asset_id: str, ts_ms: Sequence[int]) 
     """Stored values of those of `ts_ms` the asset already has."""
     found: dict[int, dict[str, Any]] = {}
     unique = sorted(set(ts_ms))
+    conn = session.connection()
     for part in _chunks(unique):
-        rows = session.connection().execute(
-            select(Reading.ts_ms, Reading.values).where(Reading.asset_id == asset_id, Reading.ts_ms.in_(part))
-        )
+        rows = conn.execute(_existing_readings(), {"asset_id": asset_id, "ts_ms": list(part)})
         found.update({int(t): v for t, v in rows})
     return found
 
@@ -133,14 +191,10 @@ def readings_between(
     session: Session, *, asset_id: str, start_ms: int, end_ms: int, limit: int | None = None
 ) -> list[tuple[int, dict[str, Any]]]:
     """(ts_ms, values) with start_ms <= ts_ms < end_ms, oldest first."""
-    q = (
-        select(Reading.ts_ms, Reading.values)
-        .where(Reading.asset_id == asset_id, Reading.ts_ms >= start_ms, Reading.ts_ms < end_ms)
-        .order_by(Reading.ts_ms)
-    )
+    params: dict[str, Any] = {"asset_id": asset_id, "start_ms": start_ms, "end_ms": end_ms}
     if limit is not None:
-        q = q.limit(limit)
-    return [(int(t), v) for t, v in session.connection().execute(q)]
+        params["limit"] = limit
+    return [(int(t), v) for t, v in session.connection().execute(_readings_between(limit is not None), params)]
 
 
 # --- window scores and skipped windows ----------------------------------------------------
@@ -151,13 +205,7 @@ def window_ends_in(
 ) -> set[int]:
     """Window-end grid indexes lo..hi already recorded in `table` for this asset and model version."""
     rows = session.connection().scalars(
-        select(table.window_end_index).where(
-            table.asset_id == asset_id,
-            table.model_id == model_id,
-            table.model_version == model_version,
-            table.window_end_index >= lo,
-            table.window_end_index <= hi,
-        )
+        _window_ends_in(table), {"asset_id": asset_id, "model_id": model_id, "model_version": model_version, "lo": lo, "hi": hi}
     )
     return {int(r) for r in rows}
 
@@ -187,15 +235,8 @@ def delete_skipped(session: Session, *, asset_id: str, model_id: str, model_vers
 def recent_scores(session: Session, *, asset_id: str, model_id: str, model_version: str, before_index: int, limit: int) -> list[float]:
     """The last `limit` stored scores before window end `before_index`, oldest first."""
     rows = session.connection().scalars(
-        select(WindowScore.score)
-        .where(
-            WindowScore.asset_id == asset_id,
-            WindowScore.model_id == model_id,
-            WindowScore.model_version == model_version,
-            WindowScore.window_end_index < before_index,
-        )
-        .order_by(WindowScore.window_end_index.desc())
-        .limit(limit)
+        _recent_scores(),
+        {"asset_id": asset_id, "model_id": model_id, "model_version": model_version, "before_index": before_index, "limit": limit},
     ).all()
     return [float(s) for s in reversed(rows)]
 

@@ -16,10 +16,11 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
+from functools import cache
 from typing import Any
 
 import numpy as np
-from sqlalchemy import func, select
+from sqlalchemy import Select, bindparam, func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -42,11 +43,15 @@ def get_asset(session: Session, *, asset_id: str, for_update: bool = False) -> A
     return asset
 
 
+@cache
+def _in_force() -> Select[Any]:
+    # Built once and reused: every ingest request asks (service/db/readings.py says why).
+    return select(ThresholdVersion).where(ThresholdVersion.asset_id == bindparam("asset_id")).order_by(ThresholdVersion.version.desc()).limit(1)
+
+
 def threshold_in_force(session: Session, *, asset_id: str) -> ThresholdVersion | None:
     """The asset's highest threshold version, or None before its first."""
-    return session.scalars(
-        select(ThresholdVersion).where(ThresholdVersion.asset_id == asset_id).order_by(ThresholdVersion.version.desc()).limit(1)
-    ).first()
+    return session.scalars(_in_force(), {"asset_id": asset_id}).first()
 
 
 def threshold_history(session: Session, *, asset_id: str) -> list[ThresholdVersion]:
