@@ -47,7 +47,7 @@ def sine_windows(n: int, seed: int) -> np.ndarray:
 @pytest.mark.parametrize("merge", ["concat", "sum", "multiply", "average"])
 @pytest.mark.parametrize("bidirectional", [True, False])
 def test_forward_shapes_and_merge_widths(merge: str, bidirectional: bool) -> None:
-    cfg = ModelConfig(hidden=6, latent=3, layers=2, merge=merge, bidirectional=bidirectional)
+    cfg = ModelConfig(hidden=6, latent=3, layers=2, merge=merge, bidirectional=bidirectional, score="mean_squared")
     model = Reconstructor(cfg, C, W, CENTER, SCALE).eval()
     x = torch.from_numpy(sine_windows(5, 0).astype(np.float32))
     recon, resid, score = model(x)
@@ -99,7 +99,7 @@ def test_the_bottleneck_decoder_sees_only_the_latent_vector() -> None:
 
 def test_flops_count_the_gate_matmuls_and_linears() -> None:
     """Hand count for one bidirectional concat layer each side (2 x multiply-adds)."""
-    cfg = ModelConfig(hidden=8, latent=3, layers=1, bidirectional=True, merge="concat")
+    cfg = ModelConfig(hidden=8, latent=3, layers=1, bidirectional=True, merge="concat", score="mean_squared")
     enc = 2 * 2 * W * 4 * 8 * (C + 8)  # two directions, four gates, W_ih x + W_hh h
     dec = 2 * 2 * W * 4 * 8 * (3 + 8)
     to_latent = 2 * 16 * 3
