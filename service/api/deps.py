@@ -22,7 +22,7 @@ from typing import Annotated
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
-from service.db.keys import find_key
+from service.db.keys import find_key_fields
 from service.db.session import Database
 from service.errors import Forbidden, Unauthorized
 from service.metrics import Metrics
@@ -102,11 +102,12 @@ def get_caller(request: Request) -> Caller:
     key = bearer_key(request)
     if key is None:
         raise Unauthorized("send an API key: 'Authorization: Bearer <key>' (create one with `echowatch keys create`)")
-    with request.app.state.db.session() as session:
-        row = find_key(session, key=key)
-        if row is None:
-            raise Unauthorized("this API key is unknown or revoked")
-        caller = Caller(row.id, row.name, row.role, frozenset(row.assets) if row.assets is not None else None)
+    # Looked up on every request (no cache), so a revoked key is refused from the next request on.
+    with request.app.state.db.engine.connect() as conn:
+        row = find_key_fields(conn, key=key)
+    if row is None:
+        raise Unauthorized("this API key is unknown or revoked")
+    caller = Caller(row.id, row.name, row.role, frozenset(row.assets) if row.assets is not None else None)
     request.state.caller = caller
     return caller
 

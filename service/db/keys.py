@@ -14,7 +14,7 @@ from datetime import datetime, timezone
 from functools import cache
 from typing import Any
 
-from sqlalchemy import Select, bindparam, select
+from sqlalchemy import Connection, Row, Select, bindparam, select
 from sqlalchemy.orm import Session
 
 from service.db.models import ROLES, ApiKey, AuditLog
@@ -62,6 +62,24 @@ def find_key(session: Session, *, key: str) -> ApiKey | None:
     """The unrevoked key row for this key, or None."""
     digest = hash_key(key)
     row = session.scalars(_by_hash(), {"key_hash": digest}).first()
+    if row is None or row.revoked_at is not None:
+        return None
+    if not hmac.compare_digest(row.key_hash, digest):
+        return None
+    return row
+
+
+@cache
+def _fields_by_hash() -> Select[Any]:
+    t = ApiKey.__table__
+    return select(t.c.id, t.c.name, t.c.role, t.c.assets, t.c.key_hash, t.c.revoked_at).where(t.c.key_hash == bindparam("key_hash"))
+
+
+def find_key_fields(conn: Connection, *, key: str) -> Row[Any] | None:
+    """What find_key answers, as a plain row (id, name, role, assets) read on a connection:
+    the per-request check of an API key needs no ORM session. None when unknown or revoked."""
+    digest = hash_key(key)
+    row = conn.execute(_fields_by_hash(), {"key_hash": digest}).first()
     if row is None or row.revoked_at is not None:
         return None
     if not hmac.compare_digest(row.key_hash, digest):
