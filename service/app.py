@@ -103,10 +103,11 @@ async def _warm_up(app: FastAPI, db: Database) -> None:
     """Pay once, before the service reports ready, what the first requests would otherwise
     pay: the thread pool's first use (anyio imports its backend then), a pooled database
     connection, and each included router's per-route state (FastAPI builds it lazily on the
-    first request that walks the router). Then move every object start-up made (modules, models, the app) into the
-    collector's permanent generation (gc.freeze), so the full collections that request
-    garbage triggers no longer traverse them (measured: bench/ingest.py). The lifespan's end
-    unfreezes them, so an app that is shut down (tests make many) can still be collected."""
+    first request that walks the router). Then move every object start-up made (modules,
+    models, the app) into the collector's permanent generation (gc.freeze), so the full
+    collections that request garbage triggers no longer traverse them (measured:
+    bench/ingest.py). The lifespan's end unfreezes them, so an app that is shut down (tests
+    make many) can still be collected."""
     await anyio.to_thread.run_sync(db.ping)
     for route in app.routes:
         if hasattr(route, "effective_route_contexts"):  # an included router (FastAPI >= 0.13x)
