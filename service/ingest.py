@@ -8,7 +8,8 @@ Decisions (the numbers are settings, service/settings.py):
 * Idempotency: a reading is identified by (asset, timestamp in epoch ms). Re-sending one
   with the same values counts it as a duplicate; with different values it is a 409 that
   names the timestamp. Within one batch the same timestamp twice with different values
-  is a 422.
+  is a 422. Only timestamps up to the asset's newest stored reading (assets.last_reading_at,
+  moved in the same transaction as every insert) are looked up: a later one cannot be stored.
 * Completion: the window ending on grid index e (e % stride == 0, service/grid.py) is due
   once the asset has a reading at index >= e. Windows are formed from the stored readings
   around them (window + max_fill_steps of look-back), so any replica can take any request;
@@ -343,7 +344,10 @@ def _ingest_tx(
 
     # 1. Readings: duplicates, conflicts, inserts.
     prev_max_ms = q.dt_to_ms(asset.last_reading_at) if asset.last_reading_at is not None else None
-    stored = q.existing_readings(session, asset_id=asset_id, ts_ms=[int(t) for t in ts_ms])
+    # last_reading_at moves in the same transaction as every insert of readings (below, the
+    # only writer), so a timestamp past it cannot be stored yet: only older ones are looked up.
+    maybe_stored = ts_ms if prev_max_ms is None else ts_ms[ts_ms <= prev_max_ms]
+    stored = q.existing_readings(session, asset_id=asset_id, ts_ms=maybe_stored.tolist()) if len(maybe_stored) else {}
     new_rows: list[tuple[int, dict[str, Any]]] = []
     new_pos: list[int] = []
     taken: set[int] = set()
