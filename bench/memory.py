@@ -40,7 +40,7 @@ def child(csv_path: str, events_path: str, window: int) -> None:
     import numpy as np
 
     from training.config import DataConfig
-    from training.dataset import PARTS, prepare
+    from training.dataset import PARTS, prepare_with
     from training.logs import read_events, read_logs
 
     cfg = replace(DataConfig(), window=window)
@@ -50,17 +50,7 @@ def child(csv_path: str, events_path: str, window: int) -> None:
     out["read_s"] = time.perf_counter() - t
     out["rss_read"] = vm_hwm_bytes()
     t = time.perf_counter()
-    prep = prepare(
-        logs,
-        period_s=cfg.period_s,
-        max_fill_steps=cfg.max_fill_steps,
-        window=cfg.window,
-        stride=cfg.stride,
-        train_stride=cfg.train_stride,
-        exclude=read_events(events_path),
-        margin_s=cfg.margin_s,
-        fractions=cfg.fractions,
-    )
+    prep = prepare_with(logs, cfg, read_events(events_path))
     out["prepare_s"] = time.perf_counter() - t
     out["rss_prepared"] = vm_hwm_bytes()
     # Touch every training window once, a batch at a time, as an epoch would.

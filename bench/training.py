@@ -11,7 +11,6 @@ materialising every training window as a copy would need.
 from __future__ import annotations
 
 import argparse
-import resource
 import sys
 import time
 from dataclasses import replace
@@ -46,7 +45,7 @@ def main() -> int:
 
     from training import demo_data
     from training.config import DataConfig, FitConfig, ModelConfig
-    from training.dataset import prepare
+    from training.dataset import prepare_with
     from training.fit import fit, make_model
     from training.logs import Event, from_arrays
 
@@ -60,17 +59,7 @@ def main() -> int:
     after_logs, _ = rss_mib()
     d = DataConfig()
     t0 = time.perf_counter()
-    prepared = prepare(
-        logs,
-        period_s=d.period_s,
-        max_fill_steps=d.max_fill_steps,
-        window=d.window,
-        stride=d.stride,
-        train_stride=d.train_stride,
-        exclude=events,
-        margin_s=d.margin_s,
-        fractions=d.fractions,
-    )
+    prepared = prepare_with(logs, d, events)
     t_prep = time.perf_counter() - t0
     after_prep, peak_prep = rss_mib()
     parts = prepared.parts

@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from service.grid import Grid, align, fill_gaps, window_ends, window_view
+from training.config import DataConfig
 from training.logs import DataError, Event, LogSet
 
 PARTS: tuple[str, ...] = ("train", "validation", "calibration")
@@ -333,4 +334,19 @@ def prepare(
         n_grid_points=n_grid,
         n_excluded_points=n_excluded,
         unmatched_events=unmatched,
+    )
+
+
+def prepare_with(logs: LogSet, data: DataConfig, exclude: Sequence[Event] = ()) -> Prepared:
+    """`prepare` with the grid, window and split settings of a DataConfig (trainer, evaluator, benches)."""
+    return prepare(
+        logs,
+        period_s=data.period_s,
+        max_fill_steps=data.max_fill_steps,
+        window=data.window,
+        stride=data.stride,
+        train_stride=data.train_stride,
+        exclude=list(exclude),
+        margin_s=data.margin_s,
+        fractions=data.fractions,
     )

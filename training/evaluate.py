@@ -227,7 +227,8 @@ def baseline_splits(data: EvalInputs) -> BaselineSplits:
     """The model's training cut rebuilt from the same logs: readings within the manifest's
     training stretch, prepared by training.dataset.prepare with the model's grid, window,
     strides, fractions and the labelled events excluded (as `echowatch train --exclude`)."""
-    from training.dataset import prepare
+    from training.config import DataConfig
+    from training.dataset import prepare_with
     from training.logs import AssetLog, LogSet
 
     m = data.manifest
@@ -249,17 +250,16 @@ def baseline_splits(data: EvalInputs) -> BaselineSplits:
         )
     sub = LogSet(logs.source, logs.channels, logs.units, cut, logs.sha256, sum(len(a.times_s) for a in cut.values()), logs.layout)
     s = training_data_settings(data.model_dir)
-    prepared = prepare(
-        sub,
+    data_cfg = DataConfig(
         period_s=m.sample_period_s,
-        max_fill_steps=m.gap_policy.max_fill_steps,
         window=m.window,
         stride=m.stride,
-        train_stride=s.get("train_stride"),
-        exclude=data.events,
-        margin_s=s.get("margin_s"),
-        fractions=tuple(s.get("fractions")),
+        train_stride=s["train_stride"],
+        max_fill_steps=m.gap_policy.max_fill_steps,
+        margin_s=s["margin_s"],
+        fractions=tuple(s["fractions"]),
     )
+    prepared = prepare_with(sub, data_cfg, data.events)
     cal = prepared.parts["calibration"]
     idx = np.arange(len(cal))
     owners = np.asarray(cal.asset_of(idx))

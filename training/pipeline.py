@@ -20,7 +20,7 @@ from service import grid as G
 from service.manifest import Channel, GapPolicy, Manifest, Scaler, TrainingSummary, ValidationFigures
 from training.calibrate import Calibration, calibrate, fit_mahalanobis, model_outputs, score_windows
 from training.config import TrainConfig
-from training.dataset import Prepared, prepare
+from training.dataset import Prepared, prepare_with
 from training.export import Parity, write_model_folder
 from training.fit import FitResult, even_subset, evaluate_loss, fit, make_model
 from training.logs import Event, LogSet, read_events, read_logs
@@ -188,17 +188,7 @@ def train_logs(
 ) -> TrainOutcome:
     """Prepare, fit, calibrate and export; returns where the model folder was written."""
     d, mc, fc = config.data, config.model, config.fit
-    prepared = prepare(
-        logs,
-        period_s=d.period_s,
-        max_fill_steps=d.max_fill_steps,
-        window=d.window,
-        stride=d.stride,
-        train_stride=d.train_stride,
-        exclude=list(events),
-        margin_s=d.margin_s,
-        fractions=d.fractions,
-    )
+    prepared = prepare_with(logs, d, events)
     parts = prepared.parts
     n_channels = len(prepared.channels)
     log(
