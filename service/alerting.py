@@ -139,14 +139,11 @@ def replay(
     scores: Iterable[float],
     rule: AlertRule,
     shelved: Sequence[bool] | np.ndarray | None = None,
-    state: RuleState | None = None,
 ) -> list[AlertSpan]:
-    """Run the rule over a whole score sequence (time order) and list the alerts it raises."""
-    state = state or RuleState()
+    """Run the rule over a whole score sequence (time order), from a quiet state, and list the alerts it raises."""
+    state = RuleState()
     spans: list[AlertSpan] = []
     current: AlertSpan | None = None
-    if state.active is not None:
-        current = AlertSpan(0, 0, state.active, float("-inf"), 0, False)
     for i, score in enumerate(scores):
         is_shelved = bool(shelved[i]) if shelved is not None else False
         state, transition = step(state, score, rule, shelved=is_shelved)
