@@ -246,6 +246,9 @@ def test_sign_in_refuses_machine_and_unknown_keys(page: Any, served: Served, sho
 
     # Keyboard only: the key field has the focus, Enter signs in, Tab reaches the skip link first.
     page.goto(f"{served.url}/signin")
+    # Chromium applies `autofocus` at its next rendering step, which can come after
+    # the load event on a busy machine: wait for the focus (no click) before typing.
+    page.wait_for_function("document.activeElement && document.activeElement.id === 'api_key'")
     page.keyboard.type(served.keys["operator"])
     page.keyboard.press("Enter")
     page.wait_for_url("**/alerts")
