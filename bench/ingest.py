@@ -5,9 +5,10 @@ floor measured in the same run on the same data: the same windows scored straigh
 through ONNX Runtime (service.scoring.OnnxScorer) and the same rows (readings and window
 scores) inserted with the sqlite3 module, one transaction per batch.
 
-The HTTP clients' own set-up (one httpx client each) and the JSON encoding of their bodies
-are done before the clock starts, as the floor's window cutting is: what is timed is the
-service's work plus the loopback round trips, not the load generator's start-up.
+The HTTP clients' own set-up (one keep-alive connection each) and the JSON encoding of their
+bodies are done before the clock starts, as the floor's window cutting is: what is timed is
+the service's work plus the loopback round trips, not the load generator's start-up. Both
+paths write JSON with the service's serialiser (service.db.session.json_text).
 
 Goals (issue 3): HTTP ingest >= 0.5x the floor; p99 request latency <= 4x p50.
 Bounded: a fixed amount of demo data, loopback only, the server is stopped at the end.
@@ -18,6 +19,7 @@ Bounded: a fixed amount of demo data, loopback only, the server is stopped at th
 from __future__ import annotations
 
 import argparse
+import http.client
 import json
 import math
 import os
@@ -30,7 +32,6 @@ import threading
 import time
 from pathlib import Path
 
-import httpx
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -38,13 +39,14 @@ sys.path.insert(0, str(ROOT))
 
 from service import grid as G  # noqa: E402
 from service.db.keys import create_key  # noqa: E402
-from service.db.session import Database  # noqa: E402
+from service.db.session import Database, json_text  # noqa: E402
 from service.demo import echowatch_argv, free_port, stop, wait_ready  # noqa: E402
 from service.manifest import load_manifest  # noqa: E402
 from service.scoring import OnnxScorer  # noqa: E402
 from service.settings import BUNDLED_MODELS  # noqa: E402
 
 GOAL_RATIO = 0.5
+
 GOAL_TAIL = 4.0
 
 
@@ -99,14 +101,14 @@ def floor_run(model_dir: Path, channels: list[str], batches: list[tuple[str, lis
         now = time.strftime("%Y-%m-%d %H:%M:%S")
         conn.execute("BEGIN")
         conn.executemany("INSERT INTO readings (asset_id, ts_ms, \"values\", received_at) VALUES (?, ?, ?, ?)",
-                         [(asset, int(round(r["ts"] * 1000)), json.dumps(r["values"]), now) for r in rows])
+                         [(asset, int(round(r["ts"] * 1000)), json_text(r["values"]), now) for r in rows])
         if result is not None:
             shares = result.contributions
             conn.executemany(
                 "INSERT INTO window_scores (asset_id, model_id, model_version, window_end_index, window_end_ms, score, contributions, created_at)"
                 " VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                 [(asset, m.model_id, m.version, int(e), int(round(e * period * 1000)), float(sc),
-                  json.dumps({c: round(float(x), 6) for c, x in zip(channels, sh)}), now)
+                  json_text({c: round(float(x), 6) for c, x in zip(channels, sh)}), now)
                  for e, sc, sh in zip(ends, result.score, shares)])
             n_windows += len(ends)
         conn.execute("COMMIT")
@@ -141,26 +143,32 @@ def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: in
         errors: list[str] = []
         lock = threading.Lock()
 
-        # Client set-up (httpx builds an SSL context per client) and JSON encoding of the bodies
+        # Client set-up and JSON encoding of the bodies
         # happen before the clock starts, as the floor's batches are prepared before its clock.
         bodies = [[(f"/v1/assets/{a}/readings", json.dumps({"readings": rows}).encode()) for a, rows in q] for q in queues]
         headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
-        https = [httpx.Client(base_url=url, headers=headers, timeout=60) for _ in queues]
+        # A lean keep-alive client per thread (the standard library's): the clients share the
+        # machine's cores with the server, and what is measured is the server's work.
+        conns = [http.client.HTTPConnection("127.0.0.1", port, timeout=60) for _ in queues]
 
-        def client(http: httpx.Client, q: list[tuple[str, bytes]]) -> None:
-            with http:
+        def client(conn: http.client.HTTPConnection, q: list[tuple[str, bytes]]) -> None:
+            try:
                 for path, body in q:
                     t = time.perf_counter()
-                    r = http.post(path, content=body)
+                    conn.request("POST", path, body=body, headers=headers)
+                    r = conn.getresponse()
+                    data = r.read()
                     dt = time.perf_counter() - t
                     with lock:
-                        if r.status_code != 200:
-                            errors.append(f"{r.status_code} {r.text[:200]}")
+                        if r.status != 200:
+                            errors.append(f"{r.status} {data[:200]!r}")
                             continue
                         latencies.append(dt)
-                        windows[0] += r.json()["windows_scored"]
+                        windows[0] += json.loads(data)["windows_scored"]
+            finally:
+                conn.close()
 
-        threads = [threading.Thread(target=client, args=(h, q)) for h, q in zip(https, bodies)]
+        threads = [threading.Thread(target=client, args=(c, q)) for c, q in zip(conns, bodies)]
         t0 = time.perf_counter()
         for th in threads:
             th.start()

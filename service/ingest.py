@@ -52,6 +52,7 @@ from typing import Any
 
 import numpy as np
 from sqlalchemy.exc import IntegrityError
+from sqlalchemy import Connection
 from sqlalchemy.orm import Session
 
 from service import grid
@@ -59,7 +60,8 @@ from service.alerting import AlertRule, RuleState, step
 from service.api.deps import Caller
 from service.db import readings as q
 from service.db import rule_alerts
-from service.db.models import Asset, SkippedWindow, ThresholdVersion, WindowScore
+from service.db.ingest_sql import AssetRow, IngestSQL, ThresholdRow
+from service.db.models import Asset, SkippedWindow, ThresholdVersion
 from service.db.session import Database
 from service.db.thresholds import ensure_initial_version
 from service.errors import BadInput, Conflict, Forbidden, TooLarge
@@ -121,44 +123,52 @@ def validate_batch(
     timestamp too far in the future, or one timestamp twice with different values."""
     expected = list(channels)
     expected_set = set(expected)
-    n = len(readings)
-    ts_ms = np.empty(n, dtype=np.int64)
-    values = np.empty((n, len(expected)), dtype=np.float64)
+    latest_ok = now_s + future_tolerance_s
+    nan = float("nan")
+    ts_list: list[int] = []
+    rows: list[list[float]] = []
     dicts: list[dict[str, float | None]] = []
     seen: dict[int, int] = {}
     for i, r in enumerate(readings):
-        where = f"body.readings[{i}]"
-        unknown = [c for c in r.values if c not in expected_set]
-        if unknown:
+        given = r.values
+        if given.keys() != expected_set:
+            _channel_error(i, given, expected)
+        if r.ts_s > latest_ok:
+            where = f"body.readings[{i}]"
             raise BadInput(
-                f"{where}.values: unknown channel {unknown[0]!r}; this asset's model has {', '.join(expected)}",
-                field=f"{where}.values.{unknown[0]}",
-            )
-        missing = [c for c in expected if c not in r.values]
-        if missing:
-            raise BadInput(
-                f"{where}.values: missing channel {missing[0]!r}; give every one of {', '.join(expected)} (null when not measured)",
-                field=f"{where}.values.{missing[0]}",
-            )
-        if r.ts_s > now_s + future_tolerance_s:
-            ahead = r.ts_s - now_s
-            raise BadInput(
-                f"{where}.ts: {iso_s(r.ts_s)} lies {ahead:.0f} s past the server clock ({iso_s(now_s)}); "
+                f"{where}.ts: {iso_s(r.ts_s)} lies {r.ts_s - now_s:.0f} s past the server clock ({iso_s(now_s)}); "
                 f"at most {future_tolerance_s:.0f} s ahead is accepted",
                 field=f"{where}.ts",
             )
         t = int(round(r.ts_s * 1000))
-        ordered = {c: (None if r.values[c] is None else float(r.values[c])) for c in expected}  # type: ignore[arg-type]
-        if t in seen and dicts[seen[t]] != ordered:
+        ordered = {c: (None if given[c] is None else float(given[c])) for c in expected}  # type: ignore[arg-type]
+        first = seen.setdefault(t, i)
+        if first != i and dicts[first] != ordered:
             raise BadInput(
-                f"{where}.ts: {iso_ms(t)} also appears as readings[{seen[t]}] with different values; send one",
-                field=f"{where}.ts",
+                f"body.readings[{i}].ts: {iso_ms(t)} also appears as readings[{first}] with different values; send one",
+                field=f"body.readings[{i}].ts",
             )
-        seen.setdefault(t, i)
-        ts_ms[i] = t
-        values[i] = [np.nan if ordered[c] is None else ordered[c] for c in expected]
+        ts_list.append(t)
+        rows.append([nan if x is None else x for x in ordered.values()])
         dicts.append(ordered)
+    ts_ms = np.array(ts_list, dtype=np.int64)
+    values = np.array(rows, dtype=np.float64).reshape(len(rows), len(expected))
     return ts_ms, values, dicts
+
+
+def _channel_error(i: int, given: dict[str, float | None], expected: list[str]) -> None:
+    where = f"body.readings[{i}]"
+    unknown = [c for c in given if c not in set(expected)]
+    if unknown:
+        raise BadInput(
+            f"{where}.values: unknown channel {unknown[0]!r}; this asset's model has {', '.join(expected)}",
+            field=f"{where}.values.{unknown[0]}",
+        )
+    missing = [c for c in expected if c not in given]
+    raise BadInput(
+        f"{where}.values: missing channel {missing[0]!r}; give every one of {', '.join(expected)} (null when not measured)",
+        field=f"{where}.values.{missing[0]}",
+    )
 
 
 def iso_s(ts_s: float) -> str:
@@ -204,21 +214,27 @@ def plan_windows(
     c = len(manifest.channels)
     if len(candidates) == 0:
         return WindowPlan(np.empty(0, np.int64), np.empty((0, w, c), np.float32), np.empty(0, np.int64))
-    start = int(candidates.min()) - w + 1 - f
-    end = int(candidates.max())
+    candidates = np.unique(np.asarray(candidates, dtype=np.int64))
+    start = int(candidates[0]) - w + 1 - f
+    end = int(candidates[-1])
     aligned = grid.align(ts_s, values, period, start=start, end=end)
     filled = grid.Grid(aligned.start, grid.fill_gaps(aligned.values, f))
-    ok = grid.window_ends(filled, w, s)
-    score_ends = np.intersect1d(ok, candidates)
-    # Windows that hold at least one observed point but could not be filled are gap windows.
-    observed_row = np.any(np.isfinite(aligned.values), axis=1)
-    obs_before = np.concatenate([[0], np.cumsum(observed_row)])
-    rest = np.setdiff1d(candidates, score_ends)
-    hi = rest - start + 1
+    # A candidate is scoreable when its filled window holds no NaN (grid.window_ends' test,
+    # made on the candidates alone: every candidate window lies inside [start, end]).
+    hi = candidates - start + 1
     lo = hi - w
-    holds_data = (obs_before[hi] - obs_before[lo]) > 0
-    after_warmup = (rest - w + 1) >= first_idx if first_idx is not None else np.ones(len(rest), dtype=bool)
-    gap_ends = rest[holds_data & after_warmup]
+    bad_before = np.concatenate(([0], np.cumsum(~np.all(np.isfinite(filled.values), axis=1))))
+    ok = (bad_before[hi] - bad_before[lo]) == 0
+    score_ends = candidates[ok]
+    # Windows that hold at least one observed point but could not be filled are gap windows.
+    rest = candidates[~ok]
+    if len(rest):
+        observed_before = np.concatenate(([0], np.cumsum(np.any(np.isfinite(aligned.values), axis=1))))
+        holds_data = (observed_before[hi[~ok]] - observed_before[lo[~ok]]) > 0
+        after_warmup = (rest - w + 1) >= first_idx if first_idx is not None else np.ones(len(rest), dtype=bool)
+        gap_ends = rest[holds_data & after_warmup]
+    else:
+        gap_ends = rest
     windows = grid.cut_windows(filled, score_ends, w) if len(score_ends) else np.empty((0, w, c), np.float32)
     return WindowPlan(score_ends, windows, gap_ends)
 
@@ -228,7 +244,7 @@ def top_channels(shares: np.ndarray, names: Sequence[str], n: int = TOP_CHANNELS
     return [{"channel": names[i], "share": round(float(shares[i]), 4)} for i in order]
 
 
-def rule_for(threshold: ThresholdVersion, override: dict[str, Any] | None) -> AlertRule:
+def rule_for(threshold: ThresholdVersion | ThresholdRow, override: dict[str, Any] | None) -> AlertRule:
     timing = {"on_k": threshold.on_k, "on_n": threshold.on_n, "off_m": threshold.off_m, "deadband_frac": threshold.deadband_frac}
     for k in timing:
         if override and override.get(k) is not None:
@@ -294,14 +310,29 @@ def ingest(
     ts_ms, values, dicts = validate_batch(
         readings, channels=model.channels, now_s=now.timestamp(), future_tolerance_s=settings.future_tolerance_s
     )
+    sql = IngestSQL.for_engine(db.engine)
+    batch = _Batch(asset_id=asset_id, ts_ms=ts_ms, values=values, dicts=dicts, now=now)
+    # The plan (duplicates, windows, scores) is made before the write lock, from one view of
+    # the asset's stored rows; under the lock it is used only if the asset's ingest_seq has
+    # not moved since, else made again there. Scoring, the costly part, so runs beside other
+    # requests' writes instead of queueing behind them.
+    with db.engine.connect() as view:
+        plan: _Plan | None = _prepare(_Tx(view), sql, batch, model=model, settings=settings, metrics=metrics,
+                                      asset=sql.asset_row(view, asset_id))
     for attempt in range(1, MAX_ATTEMPTS + 1):
         try:
-            with db.transaction() as session:
-                result = _ingest_tx(session, model=model, settings=settings, metrics=metrics, asset_id=asset_id,
-                                    ts_ms=ts_ms, values=values, dicts=dicts, now=now)
+            with db.write_connection() as conn:
+                tx = _Tx(conn)
+                asset = sql.asset_for_update(conn, asset_id)
+                if plan is None or plan.seq != (asset.ingest_seq if asset is not None else None):
+                    metrics.ingest_replans.inc()
+                    plan = _prepare(tx, sql, batch, model=model, settings=settings, metrics=metrics, asset=asset)
+                result = _apply(tx, sql, plan, batch, model=model, metrics=metrics, asset=asset)
+                tx.finish()
             registry.remember_binding(asset_id, model.model_id)
             break
         except IntegrityError as e:
+            plan = None
             if attempt == MAX_ATTEMPTS:
                 raise Conflict(f"asset {asset_id!r} is being written by another request; retry the batch") from e
             log.info("ingest for %s collided with a concurrent writer (attempt %d); retrying", asset_id, attempt)
@@ -313,42 +344,69 @@ def ingest(
     return result
 
 
-def _ingest_tx(
-    session: Session,
-    *,
-    model: LoadedModel,
-    settings: Settings,
-    metrics: Metrics,
-    asset_id: str,
-    ts_ms: np.ndarray,
-    values: np.ndarray,
-    dicts: list[dict[str, float | None]],
-    now: datetime,
-) -> IngestResult:
+class _Tx:
+    """A connection for the usual course, and an ORM session on the same connection (and
+    transaction) only when a rare step (a new asset, a new threshold version, gap windows, a
+    sparse duplicate check) needs one."""
+
+    def __init__(self, conn: Connection) -> None:
+        self.conn = conn
+        self._session: Session | None = None
+
+    @property
+    def session(self) -> Session:
+        if self._session is None:
+            self._session = Session(bind=self.conn, expire_on_commit=False)
+        return self._session
+
+    def finish(self) -> None:
+        """Flush what the joined session holds; the connection's block commits it."""
+        if self._session is not None:
+            self._session.flush()
+
+
+@dataclass(frozen=True)
+class _Batch:
+    """A validated batch: epoch-ms times, values (N, C) with NaN for null, the values dicts."""
+
+    asset_id: str
+    ts_ms: np.ndarray
+    values: np.ndarray
+    dicts: list[dict[str, float | None]]
+    now: datetime
+
+
+@dataclass
+class _Plan:
+    """What a batch does to its asset, worked out from one view of the asset's stored rows."""
+
+    seq: int | None  # the asset's ingest_seq in that view; None: the asset had no row yet
+    duplicates: int = 0
+    late: int = 0
+    new_rows: list[tuple[int, dict[str, Any]]] = field(default_factory=list)
+    max_ms: int | None = None  # the asset's newest reading once the batch is stored
+    score_ends: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
+    scores: np.ndarray = field(default_factory=lambda: np.empty(0, np.float32))
+    shares: np.ndarray = field(default_factory=lambda: np.empty((0, 0)))
+    gap_ends: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))  # not yet checked against recorded gaps
+    refilled: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))  # gap records to remove
+
+
+def _prepare(
+    tx: _Tx, sql: IngestSQL, batch: _Batch, *, model: LoadedModel, settings: Settings, metrics: Metrics, asset: AssetRow | None
+) -> _Plan:
+    """Duplicates, conflicts and the windows the new readings complete, scored; nothing written."""
     m = model.manifest
     period = m.sample_period_s
-    result = IngestResult(asset_id, model.model_id, model.version)
+    asset_id, ts_ms, dicts = batch.asset_id, batch.ts_ms, batch.dicts
+    plan = _Plan(seq=asset.ingest_seq if asset is not None else None)
 
-    asset = q.get_asset(session, asset_id=asset_id, for_update=True)
-    if asset is None:
-        asset = q.create_asset(session, asset_id=asset_id, model_id=model.model_id)
-    threshold = ensure_initial_version(session, asset=asset, manifest=m)
-    if threshold.model_id != model.model_id or threshold.model_version != model.version:
-        threshold = q.add_threshold_version(
-            session, asset_id=asset_id, rule=manifest_rule(m), origin="calibrated",
-            budget_per_week=m.thresholds.warning_budget_per_week,
-            reason=f"model changed to {model.model_id}/{model.version}", created_by=f"model {model.model_id}/{model.version}",
-            model_id=model.model_id, model_version=model.version,
-        )
-    result.threshold_version = threshold.version
-
-    # 1. Readings: duplicates, conflicts, inserts.
-    prev_max_ms = q.dt_to_ms(asset.last_reading_at) if asset.last_reading_at is not None else None
-    # last_reading_at moves in the same transaction as every insert of readings (below, the
-    # only writer), so a timestamp past it cannot be stored yet: only older ones are looked up.
+    # 1. Readings: duplicates and conflicts.
+    prev_max_ms = q.dt_to_ms(asset.last_reading_at) if asset is not None and asset.last_reading_at is not None else None
+    # last_reading_at moves in the same transaction as every insert of readings (the only
+    # writer), so a timestamp past it cannot be stored yet: only older ones are looked up.
     maybe_stored = ts_ms if prev_max_ms is None else ts_ms[ts_ms <= prev_max_ms]
-    stored = q.existing_readings(session, asset_id=asset_id, ts_ms=maybe_stored.tolist()) if len(maybe_stored) else {}
-    new_rows: list[tuple[int, dict[str, Any]]] = []
+    stored = _stored_values(tx, sql, asset_id=asset_id, ts_ms=maybe_stored, period=period) if len(maybe_stored) and asset is not None else {}
     new_pos: list[int] = []
     taken: set[int] = set()
     for i, (t, v) in enumerate(zip(ts_ms.tolist(), dicts)):
@@ -360,118 +418,197 @@ def _ingest_tx(
                     field=f"body.readings[{i}].ts",
                     details={"ts": iso_ms(t), "stored": stored[t]},
                 )
-            result.duplicates += 1
+            plan.duplicates += 1
         elif t in taken:
-            result.duplicates += 1  # the same reading twice in this batch
+            plan.duplicates += 1  # the same reading twice in this batch
         else:
             taken.add(t)
-            new_rows.append((t, v))
+            plan.new_rows.append((t, v))
             new_pos.append(i)
-    q.insert_readings(session, asset_id=asset_id, rows=new_rows, received_at=now)
-    result.accepted = len(new_rows)
-    if not new_rows:
-        return result
-
+    if not plan.new_rows:
+        return plan
     new_ms = ts_ms[new_pos]
+    new_values = batch.values[new_pos]
     new_idx = grid.grid_index(new_ms / 1000.0, period)
     max_ms = int(new_ms.max()) if prev_max_ms is None else max(prev_max_ms, int(new_ms.max()))
+    plan.max_ms = max_ms
     max_idx = int(grid.grid_index(max_ms / 1000.0, period))
     prev_max_idx = int(grid.grid_index(prev_max_ms / 1000.0, period)) if prev_max_ms is not None else None
     cutoff = max_idx - settings.lateness_windows * m.stride
-    result.late = int(np.count_nonzero(new_idx < cutoff))
-    asset.last_reading_at = q.ms_to_dt(max_ms)
+    plan.late = int(np.count_nonzero(new_idx < cutoff))
 
-    # 2. Windows: candidates, minus those already scored, formed from stored readings.
-    # Only a window that was already due (end <= the previous newest reading) can have
-    # been scored or recorded as a gap before; newer ones need no look-up.
+    # 2. Windows: candidates, minus those already scored, formed from stored readings plus
+    # the batch. Only a window that was already due (end <= the previous newest reading) can
+    # have been scored or recorded as a gap before; newer ones need no look-up.
     cands = candidate_ends(new_idx=new_idx, prev_max_idx=prev_max_idx, max_idx=max_idx, manifest=m, lateness_windows=settings.lateness_windows)
     key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
     was_due = cands[cands <= prev_max_idx] if prev_max_idx is not None else cands[:0]
     if len(was_due):
-        done = q.window_ends_in(session, table=WindowScore, lo=int(was_due.min()), hi=int(was_due.max()), **key)
+        done = sql.scored_between(tx.conn, lo=int(was_due.min()), hi=int(was_due.max()), **key)
         if done:
             cands = cands[~np.isin(cands, np.fromiter(done, np.int64, len(done)))]
     if len(cands) == 0:
-        return result
+        return plan
     reach_lo = int(cands.min()) - m.window + 1 - m.gap_policy.max_fill_steps
     start_ms = int(math.floor((reach_lo - 0.5) * period * 1000))
     end_ms_excl = int(math.ceil((int(cands.max()) + 0.5) * period * 1000))
-    first_new_ms = int(new_ms.min())
-    if prev_max_ms is not None and prev_max_ms < first_new_ms and not stored:
-        # A pure append: nothing is stored from the batch's first reading on, so only the
-        # look-back comes from the database and the rest is this batch.
-        rows = q.readings_between(session, asset_id=asset_id, start_ms=start_ms, end_ms=min(first_new_ms, end_ms_excl))
-        rows += [(t, v) for t, v in sorted(new_rows) if start_ms <= t < end_ms_excl]
-    else:
-        rows = q.readings_between(session, asset_id=asset_id, start_ms=start_ms, end_ms=end_ms_excl)
     names = model.channels
-    ts_all = np.array([t for t, _ in rows], dtype=np.float64) / 1000.0
-    vals_all = np.array([[np.nan if v.get(c) is None else v[c] for c in names] for _, v in rows], dtype=np.float64).reshape(len(rows), len(names))
-    plan = plan_windows(ts_s=ts_all, values=vals_all, candidates=cands, manifest=m, first_idx=None)
+    # Stored readings in reach (none from the batch's first reading on in a pure append),
+    # then the batch's new ones (already an array), in time order.
+    first_new_ms = int(new_ms.min())
+    before_hi = min(first_new_ms, end_ms_excl) - 1 if (prev_max_ms is not None and prev_max_ms < first_new_ms and not stored) else end_ms_excl - 1
+    before = sql.readings_between(tx.conn, asset_id, start_ms, before_hi) if asset is not None else []
+    order = np.argsort(new_ms, kind="stable")
+    keep = order[(new_ms[order] >= start_ms) & (new_ms[order] < end_ms_excl)]  # not stored yet: no overlap with `before`
+    ts_all = np.concatenate([np.fromiter((t for t, _ in before), dtype=np.float64, count=len(before)), new_ms[keep].astype(np.float64)])
+    vals_all = np.concatenate([_value_rows(before, names), new_values[keep]])
+    if len(before) and len(keep):
+        merged = np.argsort(ts_all, kind="stable")
+        ts_all, vals_all = ts_all[merged], vals_all[merged]
+    windows = plan_windows(ts_s=ts_all / 1000.0, values=vals_all, candidates=cands, manifest=m, first_idx=None)
 
-    # Gap windows: record once; windows before the asset's first reading are warm-up, not gaps.
-    gap_ends = plan.gap_ends
+    # Gap windows; those before the asset's first reading are warm-up, not gaps.
+    gap_ends = windows.gap_ends
     if len(gap_ends):
-        first_ms, _ = q.reading_span_ms(session, asset_id=asset_id)
-        first_idx = int(grid.grid_index(first_ms / 1000.0, period)) if first_ms is not None else max_idx
-        gap_ends = gap_ends[(gap_ends - m.window + 1) >= first_idx]
-    if len(gap_ends):
-        already = q.window_ends_in(session, table=SkippedWindow, lo=int(gap_ends.min()), hi=int(gap_ends.max()), **key)
-        fresh = [int(e) for e in gap_ends if int(e) not in already]
-        q.insert_skipped(session, rows=[{**key, "window_end_index": e, "window_end_ms": int(round(e * period * 1000)), "reason": "gap"} for e in fresh])
-        result.gap_windows = len(fresh)
-    if len(plan.score_ends) == 0:
-        return result
+        first_ms, _ = q.reading_span_ms(tx.session, asset_id=asset_id) if asset is not None else (None, None)
+        first_ms = min(first_ms, first_new_ms) if first_ms is not None else first_new_ms
+        first_idx = int(grid.grid_index(first_ms / 1000.0, period))
+        plan.gap_ends = gap_ends[(gap_ends - m.window + 1) >= first_idx]
+    if len(windows.score_ends) == 0:
+        return plan
     # A gap closed by a late reading: its window is scored now and its gap record goes.
-    refilled = plan.score_ends[plan.score_ends <= prev_max_idx] if prev_max_idx is not None else plan.score_ends[:0]
-    if len(refilled):
-        q.delete_skipped(session, ends=[int(e) for e in refilled], **key)
+    plan.refilled = windows.score_ends[windows.score_ends <= prev_max_idx] if prev_max_idx is not None else windows.score_ends[:0]
 
     # 3. Score every window of the request in one batched call.
     t0 = time.perf_counter()
-    scored = model.scorer.score(plan.windows)
+    scored = model.scorer.score(windows.windows)
     metrics.scoring_seconds.observe(time.perf_counter() - t0)
-    shares = scored.contributions  # (B, C)
-    end_ms = np.round(plan.score_ends * period * 1000).astype(np.int64)
-    q.insert_window_scores(session, rows=[
-        {**key, "window_end_index": int(e), "window_end_ms": int(ms), "score": float(sc),
-         "contributions": {c: round(float(x), 6) for c, x in zip(names, sh)}, "threshold_version_id": threshold.id, "created_at": now}
-        for e, ms, sc, sh in zip(plan.score_ends, end_ms, scored.score, shares)
-    ])
-    result.windows_scored = len(plan.score_ends)
-    result.first_window_end = q.ms_to_dt(int(end_ms[0]))
-    result.last_window_end = q.ms_to_dt(int(end_ms[-1]))
+    plan.score_ends, plan.scores, plan.shares = windows.score_ends, scored.score, scored.contributions
+    return plan
 
-    # 4. The alert rule over the windows newer than the last one it saw.
-    fresh_mask = end_ms > (asset.last_window_end_ms if asset.last_window_end_ms is not None else np.iinfo(np.int64).min)
-    if not np.any(fresh_mask):
+
+def _apply(
+    tx: _Tx, sql: IngestSQL, plan: _Plan, batch: _Batch, *, model: LoadedModel, metrics: Metrics, asset: AssetRow | None
+) -> IngestResult:
+    """Write what `plan` found, under the write lock: readings, gap records, scores, the alert
+    rule's alerts, and the asset's marks. `asset` is the row as locked now."""
+    m = model.manifest
+    period = m.sample_period_s
+    asset_id, now, conn = batch.asset_id, batch.now, tx.conn
+    result = IngestResult(asset_id, model.model_id, model.version, duplicates=plan.duplicates, late=plan.late)
+    if asset is None:
+        q.create_asset(tx.session, asset_id=asset_id, model_id=model.model_id)
+        asset = sql.asset_for_update(conn, asset_id)
+        assert asset is not None
+    threshold = sql.threshold_in_force(conn, asset_id)
+    if threshold is None or threshold.model_id != model.model_id or threshold.model_version != model.version:
+        _new_threshold_version(tx.session, asset_id=asset_id, model=model, first=threshold is None)
+        threshold = sql.threshold_in_force(conn, asset_id)
+        assert threshold is not None
+    result.threshold_version = threshold.version
+    if not plan.new_rows:
         return result
-    _run_rule(session, asset=asset, model=model, threshold=threshold, ends=plan.score_ends[fresh_mask], end_ms=end_ms[fresh_mask],
-              scores=scored.score[fresh_mask], shares=shares[fresh_mask], now=now, result=result, metrics=metrics)
-    asset.last_window_end_ms = int(end_ms[fresh_mask][-1])
-    asset.last_score = float(scored.score[fresh_mask][-1])
+    assert plan.max_ms is not None
+    sql.insert_readings(conn, asset_id, plan.new_rows, now)
+    result.accepted = len(plan.new_rows)
+
+    key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
+    if len(plan.gap_ends):
+        already = q.window_ends_in(tx.session, table=SkippedWindow, lo=int(plan.gap_ends.min()), hi=int(plan.gap_ends.max()), **key)
+        fresh = [int(e) for e in plan.gap_ends if int(e) not in already]
+        q.insert_skipped(tx.session, rows=[{**key, "window_end_index": e, "window_end_ms": int(round(e * period * 1000)), "reason": "gap"} for e in fresh])
+        result.gap_windows = len(fresh)
+    if len(plan.refilled):
+        q.delete_skipped(tx.session, ends=[int(e) for e in plan.refilled], **key)
+
+    last_window_end_ms, last_score = asset.last_window_end_ms, asset.last_score
+    if len(plan.score_ends):
+        names = model.channels
+        end_ms = np.round(plan.score_ends * period * 1000).astype(np.int64)
+        sql.insert_scores(conn, [
+            {**key, "window_end_index": int(e), "window_end_ms": int(ms), "score": float(sc),
+             "contributions": {c: round(float(x), 6) for c, x in zip(names, sh)}, "threshold_version_id": threshold.id, "created_at": now}
+            for e, ms, sc, sh in zip(plan.score_ends.tolist(), end_ms.tolist(), plan.scores, plan.shares)
+        ])
+        result.windows_scored = len(plan.score_ends)
+        result.first_window_end = q.ms_to_dt(int(end_ms[0]))
+        result.last_window_end = q.ms_to_dt(int(end_ms[-1]))
+        # 4. The alert rule over the windows newer than the last one it saw.
+        fresh_mask = end_ms > (asset.last_window_end_ms if asset.last_window_end_ms is not None else np.iinfo(np.int64).min)
+        if np.any(fresh_mask):
+            _run_rule(conn, sql, asset=asset, model=model, threshold=threshold, ends=plan.score_ends[fresh_mask], end_ms=end_ms[fresh_mask],
+                      scores=plan.scores[fresh_mask], shares=plan.shares[fresh_mask], now=now, result=result, metrics=metrics)
+            last_window_end_ms, last_score = int(end_ms[fresh_mask][-1]), float(plan.scores[fresh_mask][-1])
+    # Every batch that stored readings moves the asset's newest-reading mark (the duplicate
+    # check relies on it) and its ingest_seq (the plan check relies on it).
+    sql.update_asset(conn, asset_id=asset_id, last_reading_at=q.ms_to_dt(plan.max_ms), last_window_end_ms=last_window_end_ms,
+                     last_score=last_score, ingest_seq=asset.ingest_seq + 1)
     return result
 
 
+def _value_rows(rows: list[tuple[int, dict[str, Any]]], names: Sequence[str]) -> np.ndarray:
+    """(N, C) float64 of stored readings' values in channel order, NaN for null."""
+    nan = float("nan")
+    flat = [nan if (x := v.get(c)) is None else x for _, v in rows for c in names]
+    return np.array(flat, dtype=np.float64).reshape(len(rows), len(names))
+
+
+def _new_threshold_version(session: Session, *, asset_id: str, model: LoadedModel, first: bool) -> None:
+    """Version 1 from the manifest for a new asset, or a calibrated version when the served
+    model version changed (rare: through the ORM, in the request's transaction)."""
+    m = model.manifest
+    orm_asset = session.get(Asset, asset_id)
+    assert orm_asset is not None
+    if first:
+        ensure_initial_version(session, asset=orm_asset, manifest=m)
+    else:
+        q.add_threshold_version(
+            session, asset_id=asset_id, rule=manifest_rule(m), origin="calibrated",
+            budget_per_week=m.thresholds.warning_budget_per_week,
+            reason=f"model changed to {model.model_id}/{model.version}", created_by=f"model {model.model_id}/{model.version}",
+            model_id=model.model_id, model_version=model.version,
+        )
+    session.flush()
+
+
+# A batch whose stored-looking timestamps span at most this many grid points per reading
+# is checked for duplicates with one range scan; a sparse one (readings years apart) with
+# an IN list, so a range never walks an asset's whole history.
+DENSE_SPAN_PER_READING = 4
+
+
+def _stored_values(
+    tx: _Tx, sql: IngestSQL, *, asset_id: str, ts_ms: np.ndarray, period: float
+) -> dict[int, dict[str, Any]]:
+    """Stored values of those of `ts_ms` the asset already has."""
+    lo, hi = int(ts_ms.min()), int(ts_ms.max())
+    if (hi - lo) / (period * 1000.0) <= DENSE_SPAN_PER_READING * len(ts_ms) + 64:
+        wanted = set(ts_ms.tolist())
+        return {t: v for t, v in sql.readings_between(tx.conn, asset_id, lo, hi) if t in wanted}
+    return q.existing_readings(tx.session, asset_id=asset_id, ts_ms=ts_ms.tolist())
+
+
 def _run_rule(
-    session: Session, *, asset: Asset, model: LoadedModel, threshold: ThresholdVersion, ends: np.ndarray, end_ms: np.ndarray,
-    scores: np.ndarray, shares: np.ndarray, now: datetime, result: IngestResult, metrics: Metrics,
+    conn: Connection, sql: IngestSQL, *, asset: AssetRow, model: LoadedModel, threshold: ThresholdRow, ends: np.ndarray,
+    end_ms: np.ndarray, scores: np.ndarray, shares: np.ndarray, now: datetime, result: IngestResult, metrics: Metrics,
 ) -> None:
     rule = rule_for(threshold, asset.rule_override)
-    history = q.recent_scores(session, asset_id=asset.asset_id, model_id=model.model_id, model_version=model.version,
-                              before_index=int(ends[0]), limit=rule.memory)
-    alert = q.active_alert(session, asset_id=asset.asset_id)
+    history = sql.recent_scores(conn, asset_id=asset.asset_id, model_id=model.model_id, model_version=model.version,
+                                before_index=int(ends[0]), limit=rule.memory)
+    alert = sql.active_alert(conn, asset.asset_id)
     state = RuleState.from_history(history, alert.severity if alert else None, rule)  # type: ignore[arg-type]
     shelved = asset.shelved_until is not None and asset.shelved_until > now
     names = model.channels
     for ms, score, sh in zip(end_ms.tolist(), scores.tolist(), shares):
-        at = q.ms_to_dt(ms)
         state, transition = step(state, score, rule, shelved=shelved)
+        if transition is None and alert is None:
+            continue
+        at = q.ms_to_dt(ms)
         tops = top_channels(sh, names)
         detail = {"score": round(score, 6), "warning": rule.warning, "critical": rule.critical, "threshold_version": threshold.version}
         if transition is not None and transition.kind == "open":
-            alert = rule_alerts.open_alert(
-                session, asset_id=asset.asset_id, severity=transition.severity, at=at, score=score, top_channels=tops,
+            alert = rule_alerts.open_alert_row(
+                conn, sql, asset_id=asset.asset_id, severity=transition.severity, at=at, score=score, top_channels=tops,
                 model_id=model.model_id, model_version=model.version, threshold_version_id=threshold.id, details=detail,
             )
             result.alerts_opened += 1
@@ -482,10 +619,11 @@ def _run_rule(
             continue
         rule_alerts.extend_alert(alert, at=at, score=score, top_channels=tops)
         if transition is not None and transition.kind == "escalate":
-            rule_alerts.escalate_alert(session, alert, at=at, details=detail)
+            rule_alerts.escalate_alert_row(conn, sql, alert, at=at, details=detail)
             result.alerts_escalated += 1
         elif transition is not None and transition.kind == "return":
-            rule_alerts.return_alert(session, alert, at=at, details=detail)
+            rule_alerts.return_alert_row(conn, sql, alert, at=at, details=detail)
             result.alerts_returned += 1
             alert = None
-    session.flush()
+    if alert is not None and alert.dirty:
+        sql.save_alert(conn, alert)

@@ -102,6 +102,9 @@ class Metrics:
         self.readings_accepted = Counter("echowatch_readings_accepted_total", "Readings stored.")
         self.readings_duplicate = Counter("echowatch_readings_duplicate_total", "Readings already stored with the same values.")
         self.alerts_opened = Counter("echowatch_alerts_opened_total", "Alerts opened, by severity.")
+        self.ingest_replans = Counter(
+            "echowatch_ingest_replans_total", "Ingest plans made again under the write lock (another writer changed the asset meanwhile)."
+        )
         self.pruned_rows = Counter("echowatch_retention_pruned_rows_total", "Rows removed by retention, by table.")
 
     def render(self) -> str:
@@ -115,6 +118,7 @@ class Metrics:
             self.readings_accepted,
             self.readings_duplicate,
             self.alerts_opened,
+            self.ingest_replans,
             self.pruned_rows,
         ):
             parts.extend(m.render())

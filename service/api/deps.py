@@ -4,8 +4,8 @@ Roles: machine posts readings and scores; maintenance < operator < admin for peo
 admin may also do machine actions. Machine keys may be limited to named assets.
 
 The trivial dependencies are `async def` so FastAPI runs them on the event loop instead of
-hopping to the thread pool for each (a measurable share of a request's time); those doing
-database I/O stay plain functions and run in the pool.
+hopping to the thread pool for each (a measurable share of a request's time); so is the
+key look-up (one indexed row); sessions stay plain functions and run in the pool.
 
 Use in a route:
     def route(db: DbSession, caller: Annotated[Caller, Depends(require_role("operator"))]): ...
@@ -94,8 +94,13 @@ def bearer_key(request: Request) -> str | None:
     return value.strip()
 
 
-def get_caller(request: Request) -> Caller:
-    """The key's owner; 401 without a key or with a wrong or revoked one."""
+async def get_caller(request: Request) -> Caller:
+    """The key's owner; 401 without a key or with a wrong or revoked one.
+
+    On the event loop, not the thread pool: the look-up is one compiled statement on an
+    indexed column (tens of microseconds on SQLite, a loopback round trip on PostgreSQL),
+    less than a hop to a worker thread and back costs, and every authenticated route waits
+    for it."""
     cached = getattr(request.state, "caller", None)
     if isinstance(cached, Caller):
         return cached

@@ -12,12 +12,13 @@ import re
 import secrets
 from datetime import datetime, timezone
 from functools import cache
-from typing import Any
+from typing import Any, NamedTuple
 
-from sqlalchemy import Connection, Row, Select, bindparam, select
+from sqlalchemy import Connection, Select, bindparam, select
 from sqlalchemy.orm import Session
 
 from service.db.models import ROLES, ApiKey, AuditLog
+from service.db.prepared import prepared
 
 KEY_PREFIX = "ew_"
 ASSET_ID_RE = re.compile(r"^[A-Za-z0-9_.\-]{1,64}$")
@@ -69,20 +70,30 @@ def find_key(session: Session, *, key: str) -> ApiKey | None:
     return row
 
 
-@cache
+class KeyFields(NamedTuple):
+    id: int
+    name: str
+    role: str
+    assets: list[str] | None
+    key_hash: str
+    revoked_at: datetime | None
+
+
 def _fields_by_hash() -> Select[Any]:
     t = ApiKey.__table__
     return select(t.c.id, t.c.name, t.c.role, t.c.assets, t.c.key_hash, t.c.revoked_at).where(t.c.key_hash == bindparam("key_hash"))
 
 
-def find_key_fields(conn: Connection, *, key: str) -> Row[Any] | None:
-    """What find_key answers, as a plain row (id, name, role, assets) read on a connection:
-    the per-request check of an API key needs no ORM session. None when unknown or revoked."""
+def find_key_fields(conn: Connection, *, key: str) -> KeyFields | None:
+    """What find_key answers, as plain fields (id, name, role, assets) read on a connection
+    with one compiled statement: the per-request check of an API key needs no ORM session.
+    None when unknown or revoked."""
     digest = hash_key(key)
-    row = conn.execute(_fields_by_hash(), {"key_hash": digest}).first()
-    if row is None or row.revoked_at is not None:
+    rows = prepared(conn.dialect, "api_key_by_hash", _fields_by_hash).rows(conn, {"key_hash": digest})
+    if not rows:
         return None
-    if not hmac.compare_digest(row.key_hash, digest):
+    row = KeyFields(*rows[0])
+    if row.revoked_at is not None or not hmac.compare_digest(row.key_hash, digest):
         return None
     return row
 

@@ -99,6 +99,9 @@ class Asset(Base):
     last_reading_at: Mapped[datetime | None] = mapped_column(default=None)  # newest reading's time
     last_window_end_ms: Mapped[int | None] = mapped_column(BigInteger, default=None)  # newest window the rule saw
     last_score: Mapped[float | None] = mapped_column(Float, default=None)
+    # Moved by every ingest that stores readings: the check that a plan made before the write
+    # lock still holds under it (service/ingest.py).
+    ingest_seq: Mapped[int] = mapped_column(BigInteger, default=0, server_default="0")
     shelved_until: Mapped[datetime | None] = mapped_column(default=None)
     shelve_reason: Mapped[str | None] = mapped_column(Text, default=None)
     shelved_by: Mapped[str | None] = mapped_column(String(64), default=None)

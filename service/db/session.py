@@ -14,7 +14,9 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event, make_url, text
+import pydantic_core
+
+from sqlalchemy import Connection, Engine, create_engine, event, make_url, text
 
 try:
     import fcntl
@@ -33,10 +35,22 @@ def sqlite_file(url: str) -> Path | None:
     return Path(u.database)
 
 
+def json_text(value: Any) -> str:
+    """JSON columns are written by pydantic-core's serializer (compact, several times faster
+    than the json module; the ingest path writes one document per reading) and read back by
+    its parser. Floats round-trip exactly; a non-finite float becomes null."""
+    return pydantic_core.to_json(value).decode()
+
+
 def make_engine(url: str, *, busy_timeout_ms: int = 5000, echo: bool = False) -> Engine:
     """An engine for `url`; for an SQLite file, its folder is created and the pragmas set."""
     u = make_url(url)
-    kwargs: dict[str, Any] = {"echo": echo, "pool_pre_ping": u.get_backend_name() != "sqlite"}
+    kwargs: dict[str, Any] = {
+        "echo": echo,
+        "pool_pre_ping": u.get_backend_name() != "sqlite",
+        "json_serializer": json_text,
+        "json_deserializer": pydantic_core.from_json,
+    }
     if u.get_backend_name() == "sqlite":
         path = sqlite_file(url)
         if path is not None:
@@ -106,7 +120,8 @@ class Database:
         self.url = url
         self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms)
         self._read = sessionmaker(self.engine, expire_on_commit=False)
-        self._write = sessionmaker(self.engine.execution_options(**{_BEGIN_OPTION: "IMMEDIATE"}), expire_on_commit=False)
+        self._write_engine = self.engine.execution_options(**{_BEGIN_OPTION: "IMMEDIATE"})
+        self._write = sessionmaker(self._write_engine, expire_on_commit=False)
         # SQLite has one writer at a time and its busy handler waits by sleeping (up to 100 ms
         # a step), which makes queued writers slow and latency tails long. Writers queue on a
         # lock instead: a thread lock within the process and, for a database file, an flock on
@@ -125,6 +140,15 @@ class Database:
 
     def write_session(self) -> Session:
         return self._write()
+
+    @contextmanager
+    def write_connection(self) -> Iterator[Connection]:
+        """A Core connection in a write transaction (BEGIN IMMEDIATE on SQLite, under the
+        writer lock), committed on success and rolled back on any error: the ingest path,
+        which needs no ORM session on its usual course (`Session(bind=conn)` joins this
+        transaction when it does)."""
+        with self._write_lock, self._write_engine.begin() as conn:
+            yield conn
 
     @contextmanager
     def transaction(self) -> Iterator[Session]:

@@ -4,6 +4,8 @@ variables, as they do in production (monkeypatch restores them)."""
 
 from __future__ import annotations
 
+import json
+
 import shutil
 import sqlite3
 from pathlib import Path
@@ -36,7 +38,7 @@ def test_keys_create_prints_the_key_alone_on_one_line(cli_env: Path, capsys) -> 
     with sqlite3.connect(cli_env) as c:
         rows = c.execute("SELECT name, role, assets, key_hash FROM api_keys").fetchall()
         audit = c.execute("SELECT action, actor FROM audit_log").fetchall()
-    assert rows == [("gateway-7", "machine", '["pump-01", "pump-02"]', hash_key(key))]
+    assert [(n, r, json.loads(a), h) for n, r, a, h in rows] == [("gateway-7", "machine", ["pump-01", "pump-02"], hash_key(key))]
     assert audit == [("key.create", "cli")]
 
 

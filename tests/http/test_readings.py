@@ -3,6 +3,8 @@ order, late), gaps, the alert rule on ingest, stateless scoring, and the asset v
 
 from __future__ import annotations
 
+import json
+
 import random
 
 import numpy as np
@@ -97,6 +99,45 @@ def test_late_reading_closes_a_gap_and_its_windows_are_scored(env) -> None:
     assert env.count("skipped_windows") == 0
 
 
+def test_plan_made_before_the_lock_is_made_again_when_another_writer_changed_the_asset(env, monkeypatch) -> None:
+    """A batch's windows are formed and scored before the write lock, then written under it
+    only if the asset's ingest_seq has not moved. Here a late reading for the same asset is
+    stored in between: the batch must be planned again, so its window holds that reading."""
+    import service.ingest as ingest_module
+    from service.api.deps import Caller
+
+    env.post("pump-01", readings([*range(9), 10, 11]))  # step 9 missing: forward-filled from step 8
+    state = env.client.app.state
+    real_prepare = ingest_module._prepare
+    calls = []
+
+    def prepare_then_interleave(*args, **kwargs):
+        plan = real_prepare(*args, **kwargs)
+        calls.append(plan.seq)
+        if len(calls) == 1:  # the batch's first plan: another writer stores step 9 now
+            late = reading(9, dev=3.0)
+            ingest_module.ingest(db=state.db, registry=state.registry, settings=env.settings, metrics=state.metrics,
+                                 caller=Caller(0, "other-writer", "machine", None), asset_id="pump-01",
+                                 readings=[ingest_module.RawReading(late["ts"], late["values"])])
+        return plan
+
+    monkeypatch.setattr(ingest_module, "_prepare", prepare_then_interleave)
+    r = env.post("pump-01", readings([12, 13])).json()
+    # The batch's plan (seq 1), the other writer's (seq 1), the batch's again under the lock (seq 2).
+    assert calls == [1, 1, 2], calls
+    assert r["windows_scored"] == 1 and r["first_window_end"] == "2026-10-01T00:12:00Z"
+    assert "echowatch_ingest_replans_total 1" in env.client.get("/metrics").text
+
+    # The stored score is the window with the late reading in it, not the forward-filled one.
+    def window(step9_dev: float) -> list[list[float]]:
+        return [[reading(i, step9_dev if i == 9 else 0.0)["values"][c] for c in tiny_model.CHANNELS] for i in range(7, 13)]
+
+    scored = env.client.post("/v1/score", json={"windows": [window(3.0), window(0.0)]}, headers=env.auth("machine")).json()["scores"]
+    assert scored[0] > scored[1] * 2  # the late reading moves this window's score
+    (stored,) = env.rows("SELECT score FROM window_scores WHERE asset_id=? AND window_end_index=?", "pump-01", BASE_IDX + 12)
+    assert stored[0] == pytest.approx(scored[0], rel=1e-6)
+
+
 def test_readings_beyond_the_lateness_limit_are_stored_not_scored(tmp_path, tiny_dir) -> None:
     from service_env import start_env
 
@@ -129,7 +170,7 @@ def test_alert_opens_escalates_returns_with_events_peak_and_top_channel(env) -> 
     aid, severity, condition, active_key, peak, top, opened, returned = alert
     assert (severity, condition, active_key) == ("critical", "returned", None)
     assert peak == pytest.approx(225 / 6, rel=1e-5)
-    assert '"bearing_temp_c", "share": 1.0' in top
+    assert json.loads(top)[0] == {"channel": "bearing_temp_c", "share": 1.0}
     assert opened < returned
     kinds = [k for (k,) in env.rows("SELECT kind FROM alert_events WHERE alert_id=? ORDER BY id", aid)]
     assert kinds == ["opened", "escalated", "returned"]
