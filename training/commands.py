@@ -40,7 +40,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
     m = p.add_argument_group("model")
     m.add_argument("--hidden", type=int, default=_M.hidden, help=f"LSTM state width (default {_M.hidden})")
     m.add_argument("--latent", type=int, default=_M.latent, help=f"bottleneck width (default {_M.latent})")
-    m.add_argument("--layers", type=int, default=_M.layers, help=f"LSTM layers in encoder and decoder (default {_M.layers})")
+    m.add_argument("--layers", type=int, default=_M.layers, help=f"LSTM layers in the encoder (default {_M.layers})")
+    m.add_argument("--decoder-layers", type=int, default=_M.decoder_layers, help="LSTM layers in the decoder (default: " + (str(_M.decoder_layers) if _M.decoder_layers is not None else "as --layers") + ")")
     m.add_argument("--merge", choices=("concat", "sum", "multiply", "average"), default=_M.merge, help=f"how bidirectional layers merge directions (default {_M.merge})")
     m.add_argument("--no-bidirectional", action="store_true", help="unidirectional LSTM layers")
     m.add_argument("--dropout", type=float, default=_M.dropout, help=f"between stacked layers (default {_M.dropout:g})")
@@ -82,6 +83,7 @@ def config_from_args(args: argparse.Namespace):  # type: ignore[no-untyped-def]
         model = ModelConfig(
             hidden=args.hidden,
             layers=args.layers,
+            decoder_layers=args.decoder_layers,
             latent=args.latent,
             bidirectional=not args.no_bidirectional,
             merge=args.merge,
@@ -112,6 +114,7 @@ def check_config(data: DataConfig, model: ModelConfig, fit: FitConfig, cal: Cali
         "--hidden": model.hidden,
         "--latent": model.latent,
         "--layers": model.layers,
+        "--decoder-layers": model.decoder_layers if model.decoder_layers is not None else model.layers,
         "--epochs": fit.epochs,
         "--batch-size": fit.batch_size,
         "--lr": fit.lr,

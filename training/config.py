@@ -29,7 +29,8 @@ class DataConfig:
 @dataclass(frozen=True)
 class ModelConfig:
     hidden: int = 16  # LSTM state width of every encoder and decoder layer (measured: model.py)
-    layers: int = 1  # LSTM layers in the encoder and, mirrored, in the decoder
+    layers: int = 1  # LSTM layers in the encoder (and in the decoder unless decoder_layers is set)
+    decoder_layers: int | None = None  # LSTM layers in the decoder; None: the same as layers
     latent: int = 4  # bottleneck width: one vector per window (measured: model.py)
     bidirectional: bool = True  # read the window both ways in every layer
     merge: MergeMode = "concat"  # how a bidirectional layer combines its two directions per step
@@ -41,7 +42,8 @@ class ModelConfig:
         return [LayerSpec(hidden=self.hidden, bidirectional=self.bidirectional, merge=self.merge)] * self.layers
 
     def decoder_specs(self) -> list[LayerSpec]:
-        return [LayerSpec(hidden=self.hidden, bidirectional=self.bidirectional, merge=self.merge)] * self.layers
+        n = self.layers if self.decoder_layers is None else self.decoder_layers
+        return [LayerSpec(hidden=self.hidden, bidirectional=self.bidirectional, merge=self.merge)] * n
 
     def architecture(self, parameters: int, flops_per_window: int) -> Architecture:
         return Architecture(

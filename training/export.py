@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import onnx
 import torch
 
 from service.manifest import (
@@ -36,6 +37,7 @@ from service.manifest import (
     file_sha256,
 )
 from service.scoring import OnnxScorer
+from training import graph_rewrite
 from training.model import Reconstructor
 
 OPSET = 17
@@ -73,8 +75,13 @@ class Parity:
         return out
 
 
-def export_onnx(model: Reconstructor, path: Path) -> None:
-    """Write the model's forward pass (scaling to score) as an ONNX graph with a dynamic batch."""
+def export_onnx(model: Reconstructor, path: Path, lean: bool = True) -> None:
+    """Write the model's forward pass (scaling to score) as an ONNX graph with a dynamic batch.
+
+    With `lean` (the default) the exporter's layout copies around the LSTM nodes are
+    rewritten away afterwards (training/graph_rewrite.py); the parity check in
+    write_model_folder runs on the rewritten graph.
+    """
     model.eval()
     dummy = model.center.expand(2, model.window, model.n_channels).clone()  # (2, W, C)
     with warnings.catch_warnings():
@@ -92,6 +99,10 @@ def export_onnx(model: Reconstructor, path: Path) -> None:
             output_names=list(OUTPUT_NAMES),
             dynamic_axes={INPUT_NAME: {0: "batch"}, **{name: {0: "batch"} for name in OUTPUT_NAMES}},
         )
+    if lean:
+        graph = onnx.load(str(path))
+        graph_rewrite.lean(graph)
+        onnx.save(graph, str(path))
 
 
 def check_windows(model: Reconstructor, real: np.ndarray | None, n_random: int = 64, seed: int = 0) -> np.ndarray:

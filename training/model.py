@@ -77,7 +77,9 @@ class LSTMLayer(nn.Module):
         if not self.spec.bidirectional:
             return y, h[0]
         hid = self.spec.hidden
-        steps = merge_directions(y[..., :hid], y[..., hid:], self.spec.merge)  # (B, T, O)
+        # nn.LSTM already lays the directions out as concat: slicing and re-joining them
+        # would be two copies of the widest tensor (in torch and in the exported graph).
+        steps = y if self.spec.merge == "concat" else merge_directions(y[..., :hid], y[..., hid:], self.spec.merge)  # (B, T, O)
         # h[0]: forward direction after the last step; h[1]: backward direction after the first.
         summary = merge_directions(h[0], h[1], self.spec.merge)  # (B, O)
         return steps, summary

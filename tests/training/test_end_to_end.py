@@ -46,7 +46,7 @@ PLAN = [
 ARGS = [
     "--epochs", "4", "--epoch-windows", "2500", "--patience", "3",
     "--window", "30", "--stride", "5", "--train-stride", "3",
-    "--hidden", "16", "--latent", "4", "--threads", "1", "--seed", "3",
+    "--hidden", "16", "--latent", "4", "--layers", "1", "--decoder-layers", "1", "--threads", "1", "--seed", "3",
     "--version", "e2e",
 ]  # fmt: skip
 

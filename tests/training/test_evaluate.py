@@ -62,7 +62,7 @@ def setup(tmp_path_factory: pytest.TempPathFactory) -> Setup:
     train_set = LogSet(logs.source, logs.channels, logs.units, head, logs.sha256, logs.n_rows, logs.layout)
     config = TrainConfig(
         data=DataConfig(window=30, stride=5, train_stride=5, margin_s=1800.0),
-        model=ModelConfig(hidden=8, latent=4),
+        model=ModelConfig(hidden=8, latent=4, layers=1, decoder_layers=1),
         fit=FitConfig(epochs=2, batch_size=64, max_train_windows=600, max_validation_windows=300, threads=1),
         calibration=CalibrationConfig(),
         model_id="tiny",

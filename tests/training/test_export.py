@@ -46,9 +46,13 @@ def real_like(n: int, seed: int) -> np.ndarray:
     return (CENTER + SCALE * (x + 0.05 * rng.normal(size=(n, W, C)))).astype(np.float32)
 
 
-def tiny_model(merge: str = "concat", bidirectional: bool = True, score: str = "mean_squared", seed: int = 0) -> Reconstructor:
+def tiny_model(
+    merge: str = "concat", bidirectional: bool = True, score: str = "mean_squared", seed: int = 0, decoder_layers: int | None = None
+) -> Reconstructor:
     torch.manual_seed(seed)
-    cfg = ModelConfig(hidden=5, latent=2, layers=2, merge=merge, bidirectional=bidirectional, score=score)
+    cfg = ModelConfig(
+        hidden=5, latent=2, layers=2, decoder_layers=decoder_layers, merge=merge, bidirectional=bidirectional, score=score
+    )
     model = Reconstructor(cfg, C, W, CENTER, SCALE).eval()
     if score == "mahalanobis":
         with torch.no_grad():
@@ -106,20 +110,23 @@ CAL = CalibrationScores(
 
 
 @pytest.mark.parametrize(
-    ("merge", "bidirectional", "score"),
+    ("merge", "bidirectional", "score", "decoder_layers"),
     [
-        ("concat", True, "mean_squared"),
-        ("sum", True, "mean_squared"),
-        ("multiply", True, "mean_squared"),
-        ("average", True, "mean_squared"),
-        ("concat", False, "mean_squared"),
-        ("concat", True, "mahalanobis"),
-        ("average", False, "mahalanobis"),
+        ("concat", True, "mean_squared", None),
+        ("sum", True, "mean_squared", None),
+        ("multiply", True, "mean_squared", None),
+        ("average", True, "mean_squared", None),
+        ("concat", False, "mean_squared", None),
+        ("concat", True, "mahalanobis", None),
+        ("concat", True, "mahalanobis", 1),  # the bundled model's shape: two encoder layers, one decoder layer
+        ("average", False, "mahalanobis", 1),
     ],
 )
-def test_onnx_runtime_matches_torch_on_every_output_element(tmp_path: Path, merge: str, bidirectional: bool, score: str) -> None:
+def test_onnx_runtime_matches_torch_on_every_output_element(
+    tmp_path: Path, merge: str, bidirectional: bool, score: str, decoder_layers: int | None
+) -> None:
     """Reference: the PyTorch model itself, on fresh random windows and real-like windows."""
-    model = tiny_model(merge, bidirectional, score)
+    model = tiny_model(merge, bidirectional, score, decoder_layers=decoder_layers)
     target = tmp_path / "tiny" / "t1"
     manifest, parity = write_model_folder(target, model, manifest_builder(model), CAL, real_like(16, 1))
     assert parity.score_rel_error <= 1e-4
@@ -140,6 +147,41 @@ def test_onnx_runtime_matches_torch_on_every_output_element(tmp_path: Path, merg
     assert graph.opset_import[0].version >= 17
     dims = graph.graph.input[0].type.tensor_type.shape.dim
     assert dims[0].dim_param and [d.dim_value for d in dims[1:]] == [W, C]  # dynamic batch
+
+
+def _ort_outputs(path: Path, windows: np.ndarray) -> list[np.ndarray]:
+    import onnxruntime as ort
+
+    session = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    return session.run(["reconstruction", "residual", "score"], {"readings": windows})
+
+
+@pytest.mark.parametrize("decoder_layers", [None, 1])
+def test_lean_graph_drops_the_layout_copies_and_computes_the_same(tmp_path: Path, decoder_layers: int | None) -> None:
+    """The rewritten graph (training/graph_rewrite.py) against the exporter's own graph and torch."""
+    model = tiny_model("concat", True, "mahalanobis", decoder_layers=decoder_layers)
+    plain, lean = tmp_path / "plain.onnx", tmp_path / "lean.onnx"
+    export_module.export_onnx(model, plain, lean=False)
+    export_module.export_onnx(model, lean)
+    ops_plain = [n.op_type for n in onnx.load(str(plain)).graph.node]
+    g = onnx.load(str(lean)).graph
+    ops_lean = [n.op_type for n in g.node]
+    assert "Tile" in ops_plain and "Tile" not in ops_lean  # the latent is repeated time-major, no Tile + Transpose
+    assert ops_lean.count("Transpose") < ops_plain.count("Transpose")
+    assert "ConstantOfShape" not in ops_lean  # zero initial states are the LSTM op's default
+    for node in g.node:
+        if node.op_type == "LSTM":
+            assert len(node.input) == 4  # X, W, R, B: no sequence_lens, no initial states
+    # the head runs time-major: a MatMul over (T, B, 2H), then only its C-wide result is transposed
+    (head,) = [n for n in g.node if "/head/MatMul_output_0" in n.output]
+    (head_matmul,) = [n for n in g.node if head.input[0] in n.output]
+    assert head.op_type == "Transpose" and head_matmul.op_type == "MatMul"
+    windows = np.concatenate([real_like(9, 4), (CENTER + SCALE * np.random.default_rng(8).normal(0, 3, (7, W, C))).astype(np.float32)])
+    for a, b in zip(_ort_outputs(plain, windows), _ort_outputs(lean, windows)):
+        np.testing.assert_allclose(b, a, rtol=1e-5, atol=1e-6)
+    with torch.inference_mode():
+        ref = [t.numpy() for t in model(torch.from_numpy(windows))]
+    np.testing.assert_allclose(_ort_outputs(lean, windows)[2], ref[2], rtol=1e-4)  # reference: PyTorch itself
 
 
 def _corrupting_scorer(tmp_path: Path):  # type: ignore[no-untyped-def]

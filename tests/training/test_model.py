@@ -105,8 +105,22 @@ def test_flops_count_the_gate_matmuls_and_linears() -> None:
     to_latent = 2 * 16 * 3
     head = 2 * W * 16 * C
     assert flops_per_window(cfg, C, W) == enc + dec + to_latent + head
-    maha = ModelConfig(hidden=8, latent=3, score="mahalanobis")
+    maha = ModelConfig(hidden=8, latent=3, layers=1, score="mahalanobis")
     assert flops_per_window(maha, C, W) == enc + dec + to_latent + head + 2 * W * C * C
+
+
+def test_decoder_layers_set_apart_from_the_encoder() -> None:
+    """Two encoder layers, one decoder layer: shapes, manifest specs and the hand FLOP count."""
+    cfg = ModelConfig(hidden=8, latent=3, layers=2, decoder_layers=1, score="mean_squared")
+    model = Reconstructor(cfg, C, W, np.zeros(C), np.ones(C))
+    assert len(model.encoder.layers) == 2 and len(model.decoder.layers) == 1
+    arch = cfg.architecture(model.parameters_count, flops_per_window(cfg, C, W))
+    assert len(arch.encoder) == 2 and len(arch.decoder) == 1
+    enc = 2 * 2 * W * 4 * 8 * (C + 8) + 2 * 2 * W * 4 * 8 * (16 + 8)  # layer 2 reads the 16-wide concat
+    dec = 2 * 2 * W * 4 * 8 * (3 + 8)
+    assert flops_per_window(cfg, C, W) == enc + dec + 2 * 16 * 3 + 2 * W * 16 * C
+    recon, resid, score = model(torch.randn(4, W, C))
+    assert recon.shape == resid.shape == (4, W, C) and score.shape == (4,)
 
 
 def test_error_statistics_regularise_a_singular_covariance() -> None:
