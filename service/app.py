@@ -198,6 +198,22 @@ def _optional_module(name: str) -> Any | None:
         raise
 
 
+def _document_bodies(app: FastAPI, models: list[Any]) -> None:
+    """Put the schemas of bodies that routes parse themselves into the OpenAPI components
+    (their requestBody refers to them), once, when the document is first built."""
+    from service.api.schemas import body_schemas
+
+    default = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is None:
+            schema = default()
+            schema.setdefault("components", {}).setdefault("schemas", {}).update(body_schemas(*models))
+        return app.openapi_schema  # type: ignore[return-value]
+
+    app.openapi = openapi  # type: ignore[method-assign]
+
+
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
     metrics = Metrics()
@@ -234,10 +250,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.metrics = metrics
     install_error_handlers(app)
 
+    self_parsed: list[Any] = []
     for name in API_ROUTER_MODULES:
         module = _optional_module(name)
         if module is not None:
             app.include_router(module.router)
+            self_parsed.extend(getattr(module, "SELF_PARSED_BODIES", ()))
+    _document_bodies(app, self_parsed)
     web = _optional_module(WEB_ROUTER_MODULE)
     if web is not None:
         app.include_router(web.router)

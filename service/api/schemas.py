@@ -7,14 +7,15 @@ with "Z". Channel values are JSON numbers or null (missing); NaN and infinity ar
 from __future__ import annotations
 
 from datetime import datetime, timezone
-from typing import Annotated, Any
+from typing import Annotated, Any, TypeVar
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, PlainSerializer, WithJsonSchema
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, PlainSerializer, ValidationError, WithJsonSchema
 from pydantic_core import PydanticCustomError
 
 from service.grid import TimestampError, parse_timestamp
 
 ASSET_ID_PATTERN = r"^[A-Za-z0-9_.\-]{1,64}$"
+M = TypeVar("M", bound=BaseModel)
 
 
 # Epoch seconds a reading may carry: 1970-01-01 up to the end of year 9999 (what datetime
@@ -138,3 +139,29 @@ class ScoresPage(BaseModel):
 def as_dict(obj: Any) -> dict[str, Any]:
     """A dataclass's fields as a dict (for building response models)."""
     return {k: getattr(obj, k) for k in obj.__dataclass_fields__}
+
+
+def parse_body(model: type[M], raw: bytes) -> M:
+    """`raw` as `model`, parsed and validated in one pass by pydantic-core; a 422 as FastAPI
+    gives it (locations under "body") when it is not JSON or not valid."""
+    from fastapi.exceptions import RequestValidationError
+
+    if not raw.strip():
+        raise RequestValidationError([{"type": "missing", "loc": ("body",), "msg": "Field required", "input": None}])
+    try:
+        return model.model_validate_json(raw)
+    except ValidationError as e:
+        raise RequestValidationError(
+            [{**err, "loc": ("body", *err["loc"])} for err in e.errors(include_url=False)]
+        ) from None
+
+
+def body_schemas(*models: type[BaseModel]) -> dict[str, Any]:
+    """OpenAPI component schemas of request bodies a route parses itself (parse_body), so its
+    documented requestBody can point at them."""
+    out: dict[str, Any] = {}
+    for model in models:
+        schema = model.model_json_schema(ref_template="#/components/schemas/{model}")
+        out.update(schema.pop("$defs", {}))
+        out[model.__name__] = schema
+    return out
