@@ -118,8 +118,8 @@ class WindowPlan:
 def validate_batch(
     readings: Sequence[RawReading], *, channels: Sequence[str], now_s: float, future_tolerance_s: float
 ) -> tuple[np.ndarray, np.ndarray, list[dict[str, float | None]]]:
-    """(ts_ms int64 (N,), values float64 (N, C) with NaN for null, the values dicts in channel
-    order); BadInput naming `body.readings[i]...` for unknown or missing channels, a
+    """(ts_ms int64 (N,), values float64 (N, C) in channel order with NaN for null, the values
+    dicts as given); BadInput naming `body.readings[i]...` for unknown or missing channels, a
     timestamp too far in the future, or one timestamp twice with different values."""
     expected = list(channels)
     expected_set = set(expected)
@@ -141,16 +141,18 @@ def validate_batch(
                 field=f"{where}.ts",
             )
         t = int(round(r.ts_s * 1000))
-        ordered = {c: (None if given[c] is None else float(given[c])) for c in expected}  # type: ignore[arg-type]
+        # The route's model has made every value a float or None; its key order is the
+        # sender's (dict equality, and so the duplicate check, ignores order).
         first = seen.setdefault(t, i)
-        if first != i and dicts[first] != ordered:
+        if first != i and dicts[first] != given:
             raise BadInput(
                 f"body.readings[{i}].ts: {iso_ms(t)} also appears as readings[{first}] with different values; send one",
                 field=f"body.readings[{i}].ts",
             )
         ts_list.append(t)
-        rows.append([nan if x is None else x for x in ordered.values()])
-        dicts.append(ordered)
+        row = [given[c] for c in expected]
+        rows.append([nan if x is None else float(x) for x in row])  # type: ignore[arg-type]
+        dicts.append(given)
     ts_ms = np.array(ts_list, dtype=np.int64)
     values = np.array(rows, dtype=np.float64).reshape(len(rows), len(expected))
     return ts_ms, values, dicts
@@ -316,12 +318,30 @@ def ingest(
     # the asset's stored rows; under the lock it is used only if the asset's ingest_seq has
     # not moved since, else made again there. Scoring, the costly part, so runs beside other
     # requests' writes instead of queueing behind them.
-    with db.engine.connect() as view:
-        plan: _Plan | None = _prepare(_Tx(view), sql, batch, model=model, settings=settings, metrics=metrics,
-                                      asset=sql.asset_row(view, asset_id))
+    with db.connect() as conn:
+        view = _Tx(conn)
+        try:
+            plan: _Plan | None = _prepare(view, sql, batch, model=model, settings=settings, metrics=metrics,
+                                          asset=sql.asset_row(conn, asset_id))
+        finally:
+            view.close()
+        result = _write(db, conn, sql, plan, batch, registry=registry, model=model, settings=settings, metrics=metrics)
+    metrics.readings_accepted.inc(result.accepted)
+    metrics.readings_duplicate.inc(result.duplicates)
+    metrics.windows_scored.inc(result.windows_scored)
+    metrics.windows_skipped.inc(result.gap_windows)
+    return result
+
+
+def _write(
+    db: Database, conn: Connection, sql: IngestSQL, plan: _Plan | None, batch: _Batch, *,
+    registry: ModelRegistry, model: LoadedModel, settings: Settings, metrics: Metrics,
+) -> IngestResult:
+    """Under the write lock: use the plan if the asset is as it was, else plan again; write."""
+    asset_id = batch.asset_id
     for attempt in range(1, MAX_ATTEMPTS + 1):
         try:
-            with db.write_connection() as conn:
+            with db.write_transaction(conn):
                 tx = _Tx(conn)
                 asset = sql.asset_for_update(conn, asset_id)
                 if plan is None or plan.seq != (asset.ingest_seq if asset is not None else None):
@@ -337,10 +357,6 @@ def ingest(
                 raise Conflict(f"asset {asset_id!r} is being written by another request; retry the batch") from e
             log.info("ingest for %s collided with a concurrent writer (attempt %d); retrying", asset_id, attempt)
             time.sleep(0.01 * attempt)
-    metrics.readings_accepted.inc(result.accepted)
-    metrics.readings_duplicate.inc(result.duplicates)
-    metrics.windows_scored.inc(result.windows_scored)
-    metrics.windows_skipped.inc(result.gap_windows)
     return result
 
 
@@ -363,6 +379,12 @@ class _Tx:
         """Flush what the joined session holds; the connection's block commits it."""
         if self._session is not None:
             self._session.flush()
+
+    def close(self) -> None:
+        """End a read-only session (and the transaction it began on the connection)."""
+        if self._session is not None:
+            self._session.close()
+            self._session = None
 
 
 @dataclass(frozen=True)

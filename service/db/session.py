@@ -77,7 +77,7 @@ def _sqlite_events(engine: Engine, busy_timeout_ms: int) -> None:
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Any) -> None:
         mode = conn.get_execution_options().get(_BEGIN_OPTION, "DEFERRED")
-        conn.exec_driver_sql(f"BEGIN {mode}")
+        conn.connection.dbapi_connection.execute(f"BEGIN {mode}")  # the driver's own call: no statement machinery
 
 
 class _WriterLock:
@@ -141,14 +141,22 @@ class Database:
     def write_session(self) -> Session:
         return self._write()
 
+    def connect(self) -> Connection:
+        """A Core connection of the write engine: reads first (no lock; on SQLite each
+        statement sees the newest commit), then `write_transaction(conn)` for the writes.
+        The ingest path uses one such connection per request."""
+        return self._write_engine.connect()
+
     @contextmanager
-    def write_connection(self) -> Iterator[Connection]:
-        """A Core connection in a write transaction (BEGIN IMMEDIATE on SQLite, under the
-        writer lock), committed on success and rolled back on any error: the ingest path,
-        which needs no ORM session on its usual course (`Session(bind=conn)` joins this
-        transaction when it does)."""
-        with self._write_lock, self._write_engine.begin() as conn:
-            yield conn
+    def write_transaction(self, conn: Connection) -> Iterator[Connection]:
+        """`conn` in a write transaction (BEGIN IMMEDIATE on SQLite, under the writer lock),
+        committed on success and rolled back on any error. No ORM session is needed on the
+        usual course; `Session(bind=conn)` joins this transaction when one is."""
+        with self._write_lock:
+            if conn.in_transaction():  # reads left a transaction open (engines without autocommit reads)
+                conn.rollback()
+            with conn.begin():
+                yield conn
 
     @contextmanager
     def transaction(self) -> Iterator[Session]:
