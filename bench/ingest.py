@@ -13,7 +13,7 @@ paths write JSON with the service's serialiser (service.db.session.json_text).
 Goals (issue 3): HTTP ingest >= 0.5x the floor; p99 request latency <= 4x p50.
 Bounded: a fixed amount of demo data, loopback only, the server is stopped at the end.
 
-    python bench/ingest.py [--assets 6] [--hours 12] [--batch 60] [--clients 4] [--workers 1]
+    python bench/ingest.py [--assets 6] [--hours 24] [--batch 60] [--clients 4] [--workers 1] [--keep-alive]
 """
 
 from __future__ import annotations
@@ -117,7 +117,7 @@ def floor_run(model_dir: Path, channels: list[str], batches: list[tuple[str, lis
     return {"seconds": seconds, "readings": sum(len(r) for _, r in batches), "windows": n_windows}
 
 
-def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: int, workers: int, tmp: Path) -> dict:
+def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: int, workers: int, tmp: Path, keep_alive: bool = False) -> dict:
     db_url = f"sqlite:///{tmp / 'http.db'}"
     env = {**os.environ, "ECHOWATCH_DATABASE_URL": db_url, "ECHOWATCH_MODEL_DIR": str(model_dir.parent.parent),
            "ECHOWATCH_AUTH_FAIL_LIMIT": "0", "ECHOWATCH_RETENTION_DAYS": "0"}
@@ -146,18 +146,24 @@ def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: in
         # Client set-up and JSON encoding of the bodies
         # happen before the clock starts, as the floor's batches are prepared before its clock.
         bodies = [[(f"/v1/assets/{a}/readings", json.dumps({"readings": rows}).encode()) for a, rows in q] for q in queues]
-        headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
-        # A lean keep-alive client per thread (the standard library's): the clients share the
-        # machine's cores with the server, and what is measured is the server's work.
-        conns = [http.client.HTTPConnection("127.0.0.1", port, timeout=60) for _ in queues]
+        headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json", "Connection": "close"}
+        # A lean client (the standard library's): the clients share the machine's cores with
+        # the server, and what is measured is the server's work. Each post opens its own
+        # connection, as a machine sending a batch every few minutes does; the service's
+        # workers then share the posts (a kept-alive connection stays with one worker).
+        if keep_alive:
+            headers["Connection"] = "keep-alive"
 
-        def client(conn: http.client.HTTPConnection, q: list[tuple[str, bytes]]) -> None:
+        def client(q: list[tuple[str, bytes]]) -> None:
+            conn = http.client.HTTPConnection("127.0.0.1", port, timeout=60)
             try:
                 for path, body in q:
                     t = time.perf_counter()
                     conn.request("POST", path, body=body, headers=headers)
                     r = conn.getresponse()
                     data = r.read()
+                    if not keep_alive:
+                        conn.close()
                     dt = time.perf_counter() - t
                     with lock:
                         if r.status != 200:
@@ -168,7 +174,7 @@ def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: in
             finally:
                 conn.close()
 
-        threads = [threading.Thread(target=client, args=(c, q)) for c, q in zip(conns, bodies)]
+        threads = [threading.Thread(target=client, args=(q,)) for q in bodies]
         t0 = time.perf_counter()
         for th in threads:
             th.start()
@@ -191,10 +197,11 @@ def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--model", type=Path, default=BUNDLED_MODELS / "booster-pumps" / "1")
     p.add_argument("--assets", type=int, default=6)
-    p.add_argument("--hours", type=float, default=12.0)
+    p.add_argument("--hours", type=float, default=24.0)
     p.add_argument("--batch", type=int, default=60, help="readings per request (60 = an hour of one-minute readings)")
     p.add_argument("--clients", type=int, default=4)
-    p.add_argument("--workers", type=int, default=1, help="1 suits SQLite (one writer); more pay off on PostgreSQL")
+    p.add_argument("--workers", type=int, default=1, help="service worker processes (serve --workers)")
+    p.add_argument("--keep-alive", action="store_true", help="each client keeps one connection (it then stays with one worker)")
     args = p.parse_args()
 
     channels, batches, demo = make_batches(args.assets, args.hours, args.batch)
@@ -203,7 +210,7 @@ def main() -> int:
         # The machine may be shared: the floor is the best of three runs (fresh file each), which
         # makes the ratio below conservative.
         floor = min((floor_run(args.model, channels, batches, tmp / f"floor{i}.db") for i in range(3)), key=lambda f: f["seconds"])
-        http = http_run(args.model, batches, args.clients, args.workers, tmp)
+        http = http_run(args.model, batches, args.clients, args.workers, tmp, keep_alive=args.keep_alive)
 
     lat = http["latencies"]
     p50, p99 = pct(lat, 0.50), pct(lat, 0.99)
@@ -213,7 +220,8 @@ def main() -> int:
     tail = p99 / p50
     print(f"ingest bench: {args.assets} assets x {args.hours:g} h of one-minute readings = {http['readings']} readings in "
           f"{len(batches)} batches of {args.batch}; model {args.model.parent.name}/{args.model.name}; "
-          f"HTTP: {args.clients} clients, {args.workers} worker(s), SQLite WAL; cores {os.cpu_count()}")
+          f"HTTP: {args.clients} clients ({'kept-alive connections' if args.keep_alive else 'a connection per post'}), "
+          f"{args.workers} worker(s), SQLite WAL; cores {os.cpu_count()}")
     print(f"{'path':34s} {'readings/s':>11s} {'windows/s':>10s} {'windows':>8s} {'seconds':>8s}")
     print(f"{'floor: ORT + sqlite3 (best of 3)':34s} {floor_rate:11.0f} {floor['windows'] / floor['seconds']:10.1f} {floor['windows']:8d} {floor['seconds']:8.2f}")
     print(f"{'HTTP: echowatch serve':34s} {http_rate:11.0f} {http['windows'] / http['seconds']:10.1f} {http['windows']:8d} {http['seconds']:8.2f}")
