@@ -2,20 +2,26 @@
 process (readings stored, windows formed from stored readings, scored, stored, alert rule
 run), with several concurrent clients posting realistic batches, beside the in-process
 floor measured in the same run on the same data: the same windows scored straight
-through ONNX Runtime (service.scoring.OnnxScorer) and the same rows (readings and window
-scores) inserted with the sqlite3 module, one transaction per batch.
+through ONNX Runtime (service.scoring.OnnxScorer, one thread, as the service) and the same
+rows (readings and window scores) inserted with the sqlite3 module, one transaction per
+batch, in one process.
 
-The HTTP clients' own set-up (one keep-alive connection each) and the JSON encoding of their
-bodies are done before the clock starts, as the floor's window cutting is: what is timed is
-the service's work plus the loopback round trips, not the load generator's start-up. Both
-paths write JSON with the service's serialiser (service.db.session.json_text).
+Each client posts its assets' hourly batches in time order (by default one client per asset,
+as each machine posts its own), a connection per post (as a machine sending a batch now and
+then does; `--keep-alive` keeps one per client). The
+clients' set-up and the JSON encoding of their bodies are done before the clock starts, as
+the floor's window cutting is: what is timed is the service's work plus the loopback round
+trips. Both paths write JSON with the service's serialiser (service.db.session.json_text).
+The service is measured with one worker and with one per core (`serve --workers`); on
+SQLite the workers share the one writer, and each request scores its windows before it
+takes the write lock (service/ingest.py). The paths take turns (`--rounds`), and each
+path's best round is compared, since the machine may be shared.
 
 Goals (issue 3): HTTP ingest >= 0.5x the floor; p99 request latency <= 4x p50.
-Bounded: a fixed amount of demo data, loopback only, the server is stopped at the end.
+Bounded: a fixed amount of demo data, loopback only, every server is stopped at the end.
 
-    python bench/ingest.py [--assets 6] [--hours 24] [--batch 60] [--clients 4] [--workers 1] [--keep-alive]
+    python bench/ingest.py [--assets 6] [--hours 24] [--batch 60] [--clients N] [--workers 1,2] [--rounds 3] [--keep-alive]
 """
-
 from __future__ import annotations
 
 import argparse
@@ -24,7 +30,6 @@ import json
 import math
 import os
 import sqlite3
-import statistics
 import subprocess
 import sys
 import tempfile
@@ -199,39 +204,57 @@ def main() -> int:
     p.add_argument("--assets", type=int, default=6)
     p.add_argument("--hours", type=float, default=24.0)
     p.add_argument("--batch", type=int, default=60, help="readings per request (60 = an hour of one-minute readings)")
-    p.add_argument("--clients", type=int, default=4)
-    p.add_argument("--workers", type=int, default=1, help="service worker processes (serve --workers)")
+    p.add_argument("--clients", type=int, default=None, help="concurrent clients (default: one per asset, as each machine posts its own)")
+    p.add_argument("--workers", default=f"1,{os.cpu_count() or 1}",
+                   help="comma-separated `serve --workers` counts to measure (default: 1 and one per core)")
     p.add_argument("--keep-alive", action="store_true", help="each client keeps one connection (it then stays with one worker)")
+    p.add_argument("--rounds", type=int, default=3, help="turns each path takes; the best of each is compared")
     args = p.parse_args()
+    args.clients = args.clients or args.assets
+    worker_counts = sorted({int(w) for w in str(args.workers).split(",") if w.strip()})
 
     channels, batches, demo = make_batches(args.assets, args.hours, args.batch)
+    floors: list[dict] = []
+    https: dict[int, list[dict]] = {w: [] for w in worker_counts}
     with tempfile.TemporaryDirectory(prefix="echowatch-bench-") as tmp_s:
         tmp = Path(tmp_s)
-        # The machine may be shared: the floor is the best of three runs (fresh file each), which
-        # makes the ratio below conservative.
-        floor = min((floor_run(args.model, channels, batches, tmp / f"floor{i}.db") for i in range(3)), key=lambda f: f["seconds"])
-        http = http_run(args.model, batches, args.clients, args.workers, tmp, keep_alive=args.keep_alive)
-
-    lat = http["latencies"]
-    p50, p99 = pct(lat, 0.50), pct(lat, 0.99)
+        # The machine may be shared: the paths take turns, `--rounds` times, each on a fresh
+        # database, and each path's best round is compared (per-round ratios printed too).
+        for i in range(args.rounds):
+            floors.append(floor_run(args.model, channels, batches, tmp / f"floor{i}.db"))
+            for w in worker_counts:
+                round_dir = tmp / f"http{i}-w{w}"
+                round_dir.mkdir()
+                https[w].append(http_run(args.model, batches, args.clients, w, round_dir, keep_alive=args.keep_alive))
+    floor = min(floors, key=lambda f: f["seconds"])
     floor_rate = floor["readings"] / floor["seconds"]
-    http_rate = http["readings"] / http["seconds"]
-    ratio = http_rate / floor_rate
-    tail = p99 / p50
-    print(f"ingest bench: {args.assets} assets x {args.hours:g} h of one-minute readings = {http['readings']} readings in "
+    print(f"ingest bench: {args.assets} assets x {args.hours:g} h of one-minute readings = {floor['readings']} readings in "
           f"{len(batches)} batches of {args.batch}; model {args.model.parent.name}/{args.model.name}; "
           f"HTTP: {args.clients} clients ({'kept-alive connections' if args.keep_alive else 'a connection per post'}), "
-          f"{args.workers} worker(s), SQLite WAL; cores {os.cpu_count()}")
-    print(f"{'path':34s} {'readings/s':>11s} {'windows/s':>10s} {'windows':>8s} {'seconds':>8s}")
-    print(f"{'floor: ORT + sqlite3 (best of 3)':34s} {floor_rate:11.0f} {floor['windows'] / floor['seconds']:10.1f} {floor['windows']:8d} {floor['seconds']:8.2f}")
-    print(f"{'HTTP: echowatch serve':34s} {http_rate:11.0f} {http['windows'] / http['seconds']:10.1f} {http['windows']:8d} {http['seconds']:8.2f}")
-    print(f"request latency p50 {p50 * 1000:.1f} ms, p90 {pct(lat, 0.9) * 1000:.1f} ms, p99 {p99 * 1000:.1f} ms, "
-          f"max {max(lat) * 1000:.1f} ms, mean {statistics.mean(lat) * 1000:.1f} ms over {len(lat)} requests")
-    print(f"{'ratio':34s} {'measured':>11s} {'goal':>10s}  met")
-    print(f"{'HTTP / floor readings/s':34s} {ratio:11.2f} {'>= ' + str(GOAL_RATIO):>10s}  {'yes' if ratio >= GOAL_RATIO else 'NO'}")
-    print(f"{'p99 / p50 latency':34s} {tail:11.2f} {'<= ' + str(GOAL_TAIL):>10s}  {'yes' if tail <= GOAL_TAIL else 'NO'}")
-    if http["windows"] != floor["windows"]:
-        print(f"note: HTTP scored {http['windows']} windows, the floor {floor['windows']}")
+          f"SQLite WAL; cores {os.cpu_count()}; best of {args.rounds} rounds per path")
+    print()
+    print("| path | readings/s | windows/s | HTTP / floor | p50 ms | p99 ms | p99 / p50 |")
+    print("|---|---:|---:|---:|---:|---:|---:|")
+    print(f"| floor: ORT + sqlite3, one transaction per batch | {floor_rate:,.0f} | {floor['windows'] / floor['seconds']:,.1f} | 1.00 | | | |")
+    verdicts = []
+    for w in worker_counts:
+        http = min(https[w], key=lambda h: h["seconds"])
+        lat = http["latencies"]
+        p50, p99 = pct(lat, 0.50), pct(lat, 0.99)
+        rate = http["readings"] / http["seconds"]
+        ratio, tail = rate / floor_rate, p99 / p50
+        verdicts.append((w, ratio, tail))
+        print(f"| HTTP: echowatch serve --workers {w} | {rate:,.0f} | {http['windows'] / http['seconds']:,.1f} | {ratio:.2f} | "
+              f"{p50 * 1000:.1f} | {p99 * 1000:.1f} | {tail:.2f} |")
+        if http["windows"] != floor["windows"]:
+            print(f"note: HTTP scored {http['windows']} windows, the floor {floor['windows']}")
+    print()
+    for w in worker_counts:
+        rounds = ", ".join(f"{(h['readings'] / h['seconds']) / (f['readings'] / f['seconds']):.2f}" for f, h in zip(floors, https[w]))
+        print(f"--workers {w}: HTTP / floor in each round: {rounds}")
+    for w, ratio, tail in verdicts:
+        print(f"--workers {w}: goal HTTP >= {GOAL_RATIO}x floor {'met' if ratio >= GOAL_RATIO else 'MISSED'} ({ratio:.2f}); "
+              f"goal p99 <= {GOAL_TAIL:g}x p50 {'met' if tail <= GOAL_TAIL else 'MISSED'} ({tail:.2f})")
     return 0
 
 

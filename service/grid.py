@@ -13,6 +13,8 @@ causal, so streaming and batch agree); a longer gap leaves NaN and no window may
 
 from __future__ import annotations
 
+import math
+
 from dataclasses import dataclass
 from datetime import datetime, timezone, tzinfo
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -35,7 +37,7 @@ def parse_timestamp(value: object, default_tz: str | tzinfo | None = None) -> fl
         raise TimestampError(f"{value!r} is not a timestamp: give ISO-8601 with offset or epoch seconds")
     if isinstance(value, (int, float, np.integer, np.floating)):
         ts = float(value)
-        if not np.isfinite(ts):
+        if not math.isfinite(ts):
             raise TimestampError(f"{value!r} is not a finite epoch-seconds value")
         return ts
     if not isinstance(value, str):
@@ -46,7 +48,7 @@ def parse_timestamp(value: object, default_tz: str | tzinfo | None = None) -> fl
     except ValueError:
         pass
     else:
-        if not np.isfinite(ts):  # float() also reads "nan" and "inf"
+        if not math.isfinite(ts):  # float() also reads "nan" and "inf"
             raise TimestampError(f"{value!r} is not a finite epoch-seconds value")
         return ts
     try:
