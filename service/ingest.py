@@ -1,7 +1,8 @@
-"""The ingest path: validate a batch -> store readings -> form the windows they complete
-from *stored* readings -> score them in one batched ONNX Runtime call -> store scores ->
-run the alert rule -> write alert rows. One database transaction per request: a batch is
-acknowledged only after it is committed, and a rejected batch stores nothing.
+"""The ingest path: validate a batch -> plan: find duplicates, form the windows the new
+readings complete from *stored* readings plus the batch, score them in one batched ONNX
+Runtime call -> write, in one database transaction: readings, scores, the alert rule's
+alert rows. A batch is acknowledged only after it is committed, and a rejected batch
+stores nothing.
 
 Decisions (the numbers are settings, service/settings.py):
 
@@ -31,10 +32,21 @@ Decisions (the numbers are settings, service/settings.py):
   only in this process. A late window filling a hole behind that point is stored but does
   not move the rule. A shelved asset (shelved_until in the future by the server clock)
   opens no alert; an active one may still escalate and return.
-* Concurrency: one asset's batches ingest one at a time (its row is locked FOR UPDATE on
-  PostgreSQL; SQLite has a single writer). The UNIQUE keys on readings, window scores and
-  the active alert turn any remaining race into an IntegrityError, and the whole request
-  is retried (MAX_ATTEMPTS), which idempotency makes safe.
+* Plan before the lock, write under it: the plan (the costly part: reads, windows,
+  scoring) is made outside the write transaction, so it runs beside other requests'
+  writes (SQLite has one writer; `serve --workers N` plans in N processes at once). The
+  write transaction locks the asset row (FOR UPDATE on PostgreSQL; SQLite's BEGIN
+  IMMEDIATE) and uses the plan only if the asset's `ingest_seq`, moved by every batch that
+  stores readings, is what the plan saw; otherwise it plans again inside the transaction
+  (counted in echowatch_ingest_replans_total). The write then reads the rule's state
+  (recent scores, active alert, shelving, threshold) as it is under the lock.
+* Concurrency: one asset's batches write one at a time (the row lock above). The UNIQUE
+  keys on readings, window scores and the active alert turn any remaining race into an
+  IntegrityError, and the write is retried with a fresh plan (MAX_ATTEMPTS), which
+  idempotency makes safe.
+* Speed: the statements of the usual course are compiled once per engine and run on the
+  DBAPI cursor (service/db/prepared.py); an ORM session joins the transaction only for the
+  rare steps (a new asset, a new threshold version, gap records).
 * The rule's levels and timing are the asset's newest threshold version; when the served
   model version changes, a new calibrated version is created from the new manifest. The
   asset's `rule_override` (on_k, on_n, off_m, deadband_frac) applies on top.
