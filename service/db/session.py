@@ -142,10 +142,10 @@ class Database:
         return self._write()
 
     def connect(self) -> Connection:
-        """A Core connection of the write engine: reads first (no lock; on SQLite each
-        statement sees the newest commit), then `write_transaction(conn)` for the writes.
-        The ingest path uses one such connection per request."""
-        return self._write_engine.connect()
+        """A Core connection: reads first (no lock; a session on it begins a plain, deferred
+        transaction), then `write_transaction(conn)` for the writes. The ingest path uses
+        one such connection per request."""
+        return self.engine.connect()
 
     @contextmanager
     def write_transaction(self, conn: Connection) -> Iterator[Connection]:
@@ -153,8 +153,9 @@ class Database:
         committed on success and rolled back on any error. No ORM session is needed on the
         usual course; `Session(bind=conn)` joins this transaction when one is."""
         with self._write_lock:
-            if conn.in_transaction():  # reads left a transaction open (engines without autocommit reads)
+            if conn.in_transaction():  # reads left a transaction open
                 conn.rollback()
+            conn.execution_options(**{_BEGIN_OPTION: "IMMEDIATE"})
             with conn.begin():
                 yield conn
 
