@@ -23,7 +23,7 @@ from pathlib import Path
 
 from service.errors import ModelError
 from service.manifest import MANIFEST_FILE, CalibrationScores, Manifest, load_calibration, load_manifest
-from service.scoring import OnnxScorer, ScoringError
+from service.scoring import DEFAULT_CHUNK, OnnxScorer, ScoringError
 
 
 @dataclass(frozen=True)
@@ -53,7 +53,7 @@ def version_key(version: str) -> tuple[tuple[int, object], ...]:
     return tuple((0, int(p)) if p.isdigit() else (1, p) for p in parts)
 
 
-def validate_folder(path: Path, *, threads: int = 1, chunk_size: int = 64) -> LoadedModel:
+def validate_folder(path: Path, *, threads: int = 1, chunk_size: int = DEFAULT_CHUNK) -> LoadedModel:
     """Load and validate one model folder; ModelError names the folder and the reason."""
     try:
         manifest = load_manifest(path)
@@ -101,7 +101,7 @@ class ModelRegistry:
         model_dir: Path,
         *,
         threads: int = 1,
-        chunk_size: int = 64,
+        chunk_size: int = DEFAULT_CHUNK,
         default_model: str | None = None,
         asset_models: dict[str, str] | None = None,
     ) -> None:

@@ -4,6 +4,19 @@ and the benchmarks use.
 `OnnxScorer` owns an InferenceSession for one model folder, checks inputs against the
 manifest, and splits large requests into chunks of `chunk_size` windows (ONNX Runtime's
 LSTM is fastest at moderate batch sizes on one thread; see bench/scoring.py).
+
+DEFAULT_CHUNK = 16, measured on the bundled model (64-wide LSTM, two encoder layers, one
+decoder layer) at batch 256, one thread, best of 10 interleaved rounds on the shared
+machine: chunks of 8 / 16 / 24 / 32 / 64 windows scored 1,960 / 2,408 / 2,182 / 2,037 /
+~2,000 windows/s (torch eager at batch 256: 1,250-1,520 in the bench runs). Larger
+chunks make each LSTM's per-run gate buffer larger (steps x chunk x 4 x hidden floats
+per direction, ~1 MB at 16, ~4 MB at 64); smaller ones pay the per-run overhead more
+often. 8, 16 and 32 trade places from run to run under load (bench/scoring.py prints the
+chunk table every run), so a model of another shape can be given its own `chunk_size`
+(settings: ECHOWATCH_ONNX_CHUNK).
+Session options were measured too and left at ONNX Runtime's defaults (full graph
+optimisation, memory pattern, arena): basic optimisation, no memory pattern and
+denormals-as-zero were all within the run-to-run noise.
 """
 
 from __future__ import annotations
@@ -16,7 +29,7 @@ import numpy as np
 
 from service.manifest import INPUT_NAME, OUTPUT_NAMES, Manifest, file_sha256, load_manifest
 
-DEFAULT_CHUNK = 64
+DEFAULT_CHUNK = 16
 
 
 class ScoringError(RuntimeError):

@@ -10,6 +10,8 @@ from pathlib import Path
 from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from service.scoring import DEFAULT_CHUNK
+
 REPO_ROOT = Path(__file__).resolve().parents[1]
 BUNDLED_MODELS = REPO_ROOT / "models"
 
@@ -27,7 +29,7 @@ class Settings(BaseSettings):
     default_model: str | None = Field(default=None, description="model id for new assets when several exist")
     asset_models: dict[str, str] = Field(default_factory=dict, description="asset id -> model id bindings")
     onnx_threads: int = Field(default=1, ge=1, description="ONNX Runtime intra-op threads per process")
-    onnx_chunk: int = Field(default=64, ge=1, description="windows per ONNX Runtime run")
+    onnx_chunk: int = Field(default=DEFAULT_CHUNK, ge=1, description="windows per ONNX Runtime run (measured: service/scoring.py)")
 
     # Request limits (see service/ingest.py for what each means).
     max_body_bytes: int = Field(default=2_000_000, ge=1024, description="request body cap; larger is 413 before parsing")

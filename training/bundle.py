@@ -19,9 +19,14 @@ from training.config import FitConfig, TrainConfig
 
 MODEL_ID = "booster-pumps"
 VERSION = "1"
-# The training budget that keeps `make model` within about ten minutes on two shared cores:
-# 20k windows drawn per epoch (of about 116k), early stopping on validation loss. One torch
-# thread: on the shared two-core machine a training step of this small LSTM took 0.046 s
+# The training budget of `make model`: 20k windows drawn per epoch (of about 116k), at most
+# 12 epochs, early stopping on validation loss. Kept as it was for the 16-wide model: with
+# the 64-wide two-layer encoder (training/config.py) the bundle run took 1,100 s for the 12
+# epochs (218 training windows/s on the shared two-core machine) and 19 min in all, a
+# budget one developer session can afford; more windows per epoch were not needed (the
+# held-out evaluation reached recall 1.0 at 0 false alarms with 3 epochs x 8k windows,
+# and the bundle's validation loss was still falling slowly at epoch 12: 0.0223 -> 0.0216). One torch
+# thread: on the shared machine a training step of the former 16-wide LSTM took 0.046 s
 # with one thread and 0.38 s with two (oversubscribed OpenMP threads spin and wait), and a
 # fixed thread count keeps the float reduction order, hence the weights, reproducible.
 BUNDLE_FIT = FitConfig(epochs=12, max_train_windows=20000, patience=3, threads=1)
