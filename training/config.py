@@ -32,8 +32,9 @@ class ModelConfig:
     # 64 wide, two encoder layers and one decoder layer caught every held-out fault with no
     # false alarm, separated best (ROC-AUC 0.912 vs 0.892 for the former 16-wide 1/1), and
     # is the width at which the gate matmuls dominate, so ONNX Runtime reaches ~half the
-    # single-thread matmul rate; at batch 256 it stays only ~1.3-1.65x torch eager
-    # (oneDNN's LSTM is strong at large batches; see DEVELOPERS.md "Benches").
+    # single-thread matmul rate; at batch 256 it is 1.5-1.6x torch eager on a quiet
+    # machine, 1.3-1.5x under load (oneDNN's LSTM is strong at large batches; see
+    # DEVELOPERS.md "Benches").
     hidden: int = 64  # LSTM state width of every encoder and decoder layer
     layers: int = 2  # LSTM layers in the encoder (and in the decoder unless decoder_layers is set)
     decoder_layers: int | None = 1  # LSTM layers in the decoder; None: the same as layers

@@ -33,10 +33,12 @@ random weights, since speed does not depend on them; best of repeats, shared mac
       128/4 1/1                       2.5x          1.5x        1.35x        40
       64/4 2/2                        3.3-3.8x      1.6-2.0x    1.5x         40-45
       64/4 2/1                        3.9-4.5x      1.8x        1.6x         41
-      64/4 2/1 trained bundle         2.9-3.6x   1.4-1.8x    1.3-1.5x     36-48
-    (numpy float32 matmul on one thread measured 51-81 GFLOP/s in the same runs; the
-    bundle row is bench/scoring.py on models/booster-pumps/1, six runs under other jobs'
-    load: the batch-256 ratio is the one that falls below 1.5x when the machine is busy)
+      64/4 2/1 bundle, quiet          3.1-3.3x   1.7-1.8x    1.51-1.58x   47-48
+      64/4 2/1 bundle, loaded         2.9-3.6x   1.4-1.8x    1.3-1.5x     36-48
+    (numpy float32 matmul on one thread measured 51-83 GFLOP/s in the same runs; the
+    bundle rows are bench/scoring.py on models/booster-pumps/1: two runs at load < 1,
+    six under other jobs' load; the batch-256 ratio is the one that falls below 1.5x
+    when the machine is busy)
 
 A 16-wide LSTM spends its time in the element-wise gate work (which scales with H), not
 in the gate matmuls (H^2), so it cannot use the machine's matmul rate; at 96-128 wide
