@@ -151,14 +151,12 @@ def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: in
         # Client set-up and JSON encoding of the bodies
         # happen before the clock starts, as the floor's batches are prepared before its clock.
         bodies = [[(f"/v1/assets/{a}/readings", json.dumps({"readings": rows}).encode()) for a, rows in q] for q in queues]
-        headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json", "Connection": "close"}
+        headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json",
+                   "Connection": "keep-alive" if keep_alive else "close"}
         # A lean client (the standard library's): the clients share the machine's cores with
         # the server, and what is measured is the server's work. Each post opens its own
         # connection, as a machine sending a batch every few minutes does; the service's
         # workers then share the posts (a kept-alive connection stays with one worker).
-        if keep_alive:
-            headers["Connection"] = "keep-alive"
-
         def client(q: list[tuple[str, bytes]]) -> None:
             conn = http.client.HTTPConnection("127.0.0.1", port, timeout=60)
             try:

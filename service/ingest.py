@@ -72,7 +72,8 @@ from service.alerting import AlertRule, RuleState, step
 from service.api.deps import Caller
 from service.db import readings as q
 from service.db import rule_alerts
-from service.db.ingest_sql import AssetRow, IngestSQL, ThresholdRow
+from service.db import ingest_sql as store
+from service.db.ingest_sql import AssetRow, ThresholdRow
 from service.db.models import Asset, SkippedWindow, ThresholdVersion
 from service.db.session import Database
 from service.db.thresholds import ensure_initial_version
@@ -324,7 +325,6 @@ def ingest(
     ts_ms, values, dicts = validate_batch(
         readings, channels=model.channels, now_s=now.timestamp(), future_tolerance_s=settings.future_tolerance_s
     )
-    sql = IngestSQL.for_engine(db.engine)
     batch = _Batch(asset_id=asset_id, ts_ms=ts_ms, values=values, dicts=dicts, now=now)
     # The plan (duplicates, windows, scores) is made before the write lock, from one view of
     # the asset's stored rows; under the lock it is used only if the asset's ingest_seq has
@@ -333,11 +333,11 @@ def ingest(
     with db.connect() as conn:
         view = _Tx(conn)
         try:
-            plan: _Plan | None = _prepare(view, sql, batch, model=model, settings=settings, metrics=metrics,
-                                          asset=sql.asset_row(conn, asset_id))
+            plan: _Plan | None = _prepare(view, batch, model=model, settings=settings, metrics=metrics,
+                                          asset=store.asset_row(conn, asset_id))
         finally:
             view.close()
-        result = _write(db, conn, sql, plan, batch, registry=registry, model=model, settings=settings, metrics=metrics)
+        result = _write(db, conn, plan, batch, registry=registry, model=model, settings=settings, metrics=metrics)
     metrics.readings_accepted.inc(result.accepted)
     metrics.readings_duplicate.inc(result.duplicates)
     metrics.windows_scored.inc(result.windows_scored)
@@ -346,7 +346,7 @@ def ingest(
 
 
 def _write(
-    db: Database, conn: Connection, sql: IngestSQL, plan: _Plan | None, batch: _Batch, *,
+    db: Database, conn: Connection, plan: _Plan | None, batch: _Batch, *,
     registry: ModelRegistry, model: LoadedModel, settings: Settings, metrics: Metrics,
 ) -> IngestResult:
     """Under the write lock: use the plan if the asset is as it was, else plan again; write."""
@@ -355,11 +355,11 @@ def _write(
         try:
             with db.write_transaction(conn):
                 tx = _Tx(conn)
-                asset = sql.asset_for_update(conn, asset_id)
+                asset = store.asset_for_update(conn, asset_id)
                 if plan is None or plan.seq != (asset.ingest_seq if asset is not None else None):
                     metrics.ingest_replans.inc()
-                    plan = _prepare(tx, sql, batch, model=model, settings=settings, metrics=metrics, asset=asset)
-                result = _apply(tx, sql, plan, batch, model=model, metrics=metrics, asset=asset)
+                    plan = _prepare(tx, batch, model=model, settings=settings, metrics=metrics, asset=asset)
+                result = _apply(tx, plan, batch, model=model, metrics=metrics, asset=asset)
                 tx.finish()
             registry.remember_binding(asset_id, model.model_id)
             break
@@ -427,7 +427,7 @@ class _Plan:
 
 
 def _prepare(
-    tx: _Tx, sql: IngestSQL, batch: _Batch, *, model: LoadedModel, settings: Settings, metrics: Metrics, asset: AssetRow | None
+    tx: _Tx, batch: _Batch, *, model: LoadedModel, settings: Settings, metrics: Metrics, asset: AssetRow | None
 ) -> _Plan:
     """Duplicates, conflicts and the windows the new readings complete, scored; nothing written."""
     m = model.manifest
@@ -440,7 +440,7 @@ def _prepare(
     # last_reading_at moves in the same transaction as every insert of readings (the only
     # writer), so a timestamp past it cannot be stored yet: only older ones are looked up.
     maybe_stored = ts_ms if prev_max_ms is None else ts_ms[ts_ms <= prev_max_ms]
-    stored = _stored_values(tx, sql, asset_id=asset_id, ts_ms=maybe_stored, period=period) if len(maybe_stored) and asset is not None else {}
+    stored = _stored_values(tx, asset_id=asset_id, ts_ms=maybe_stored, period=period) if len(maybe_stored) and asset is not None else {}
     new_pos: list[int] = []
     taken: set[int] = set()
     for i, (t, v) in enumerate(zip(ts_ms.tolist(), dicts)):
@@ -478,7 +478,7 @@ def _prepare(
     key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
     was_due = cands[cands <= prev_max_idx] if prev_max_idx is not None else cands[:0]
     if len(was_due):
-        done = sql.scored_between(tx.conn, lo=int(was_due.min()), hi=int(was_due.max()), **key)
+        done = store.scored_between(tx.conn, lo=int(was_due.min()), hi=int(was_due.max()), **key)
         if done:
             cands = cands[~np.isin(cands, np.fromiter(done, np.int64, len(done)))]
     if len(cands) == 0:
@@ -487,18 +487,15 @@ def _prepare(
     start_ms = int(math.floor((reach_lo - 0.5) * period * 1000))
     end_ms_excl = int(math.ceil((int(cands.max()) + 0.5) * period * 1000))
     names = model.channels
-    # Stored readings in reach (none from the batch's first reading on in a pure append),
-    # then the batch's new ones (already an array), in time order.
+    # The stored readings in reach and the batch's new ones (not stored yet, so the two never
+    # overlap; the batch's are already an array), in time order.
     first_new_ms = int(new_ms.min())
-    before_hi = min(first_new_ms, end_ms_excl) - 1 if (prev_max_ms is not None and prev_max_ms < first_new_ms and not stored) else end_ms_excl - 1
-    before = sql.readings_between(tx.conn, asset_id, start_ms, before_hi) if asset is not None else []
-    order = np.argsort(new_ms, kind="stable")
-    keep = order[(new_ms[order] >= start_ms) & (new_ms[order] < end_ms_excl)]  # not stored yet: no overlap with `before`
+    before = store.readings_between(tx.conn, asset_id, start_ms, end_ms_excl - 1) if asset is not None else []
+    keep = (new_ms >= start_ms) & (new_ms < end_ms_excl)
     ts_all = np.concatenate([np.fromiter((t for t, _ in before), dtype=np.float64, count=len(before)), new_ms[keep].astype(np.float64)])
     vals_all = np.concatenate([_value_rows(before, names), new_values[keep]])
-    if len(before) and len(keep):
-        merged = np.argsort(ts_all, kind="stable")
-        ts_all, vals_all = ts_all[merged], vals_all[merged]
+    order = np.argsort(ts_all, kind="stable")
+    ts_all, vals_all = ts_all[order], vals_all[order]
     windows = plan_windows(ts_s=ts_all / 1000.0, values=vals_all, candidates=cands, manifest=m, first_idx=None)
 
     # Gap windows; those before the asset's first reading are warm-up, not gaps.
@@ -522,7 +519,7 @@ def _prepare(
 
 
 def _apply(
-    tx: _Tx, sql: IngestSQL, plan: _Plan, batch: _Batch, *, model: LoadedModel, metrics: Metrics, asset: AssetRow | None
+    tx: _Tx, plan: _Plan, batch: _Batch, *, model: LoadedModel, metrics: Metrics, asset: AssetRow | None
 ) -> IngestResult:
     """Write what `plan` found, under the write lock: readings, gap records, scores, the alert
     rule's alerts, and the asset's marks. `asset` is the row as locked now."""
@@ -532,18 +529,18 @@ def _apply(
     result = IngestResult(asset_id, model.model_id, model.version, duplicates=plan.duplicates, late=plan.late)
     if asset is None:
         q.create_asset(tx.session, asset_id=asset_id, model_id=model.model_id)
-        asset = sql.asset_for_update(conn, asset_id)
+        asset = store.asset_for_update(conn, asset_id)
         assert asset is not None
-    threshold = sql.threshold_in_force(conn, asset_id)
+    threshold = store.threshold_in_force(conn, asset_id)
     if threshold is None or threshold.model_id != model.model_id or threshold.model_version != model.version:
         _new_threshold_version(tx.session, asset_id=asset_id, model=model, first=threshold is None)
-        threshold = sql.threshold_in_force(conn, asset_id)
+        threshold = store.threshold_in_force(conn, asset_id)
         assert threshold is not None
     result.threshold_version = threshold.version
     if not plan.new_rows:
         return result
     assert plan.max_ms is not None
-    sql.insert_readings(conn, asset_id, plan.new_rows, now)
+    store.insert_readings(conn, asset_id, plan.new_rows, now)
     result.accepted = len(plan.new_rows)
 
     key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
@@ -559,7 +556,7 @@ def _apply(
     if len(plan.score_ends):
         names = model.channels
         end_ms = np.round(plan.score_ends * period * 1000).astype(np.int64)
-        sql.insert_scores(conn, [
+        store.insert_scores(conn, [
             {**key, "window_end_index": int(e), "window_end_ms": int(ms), "score": float(sc),
              "contributions": {c: round(float(x), 6) for c, x in zip(names, sh)}, "threshold_version_id": threshold.id, "created_at": now}
             for e, ms, sc, sh in zip(plan.score_ends.tolist(), end_ms.tolist(), plan.scores, plan.shares)
@@ -570,12 +567,12 @@ def _apply(
         # 4. The alert rule over the windows newer than the last one it saw.
         fresh_mask = end_ms > (asset.last_window_end_ms if asset.last_window_end_ms is not None else np.iinfo(np.int64).min)
         if np.any(fresh_mask):
-            _run_rule(conn, sql, asset=asset, model=model, threshold=threshold, ends=plan.score_ends[fresh_mask], end_ms=end_ms[fresh_mask],
+            _run_rule(conn, asset=asset, model=model, threshold=threshold, ends=plan.score_ends[fresh_mask], end_ms=end_ms[fresh_mask],
                       scores=plan.scores[fresh_mask], shares=plan.shares[fresh_mask], now=now, result=result, metrics=metrics)
             last_window_end_ms, last_score = int(end_ms[fresh_mask][-1]), float(plan.scores[fresh_mask][-1])
     # Every batch that stored readings moves the asset's newest-reading mark (the duplicate
     # check relies on it) and its ingest_seq (the plan check relies on it).
-    sql.update_asset(conn, asset_id=asset_id, last_reading_at=q.ms_to_dt(plan.max_ms), last_window_end_ms=last_window_end_ms,
+    store.update_asset(conn, asset_id=asset_id, last_reading_at=q.ms_to_dt(plan.max_ms), last_window_end_ms=last_window_end_ms,
                      last_score=last_score, ingest_seq=asset.ingest_seq + 1)
     return result
 
@@ -612,24 +609,24 @@ DENSE_SPAN_PER_READING = 4
 
 
 def _stored_values(
-    tx: _Tx, sql: IngestSQL, *, asset_id: str, ts_ms: np.ndarray, period: float
+    tx: _Tx, *, asset_id: str, ts_ms: np.ndarray, period: float
 ) -> dict[int, dict[str, Any]]:
     """Stored values of those of `ts_ms` the asset already has."""
     lo, hi = int(ts_ms.min()), int(ts_ms.max())
     if (hi - lo) / (period * 1000.0) <= DENSE_SPAN_PER_READING * len(ts_ms) + 64:
         wanted = set(ts_ms.tolist())
-        return {t: v for t, v in sql.readings_between(tx.conn, asset_id, lo, hi) if t in wanted}
+        return {t: v for t, v in store.readings_between(tx.conn, asset_id, lo, hi) if t in wanted}
     return q.existing_readings(tx.session, asset_id=asset_id, ts_ms=ts_ms.tolist())
 
 
 def _run_rule(
-    conn: Connection, sql: IngestSQL, *, asset: AssetRow, model: LoadedModel, threshold: ThresholdRow, ends: np.ndarray,
+    conn: Connection, *, asset: AssetRow, model: LoadedModel, threshold: ThresholdRow, ends: np.ndarray,
     end_ms: np.ndarray, scores: np.ndarray, shares: np.ndarray, now: datetime, result: IngestResult, metrics: Metrics,
 ) -> None:
     rule = rule_for(threshold, asset.rule_override)
-    history = sql.recent_scores(conn, asset_id=asset.asset_id, model_id=model.model_id, model_version=model.version,
+    history = store.recent_scores(conn, asset_id=asset.asset_id, model_id=model.model_id, model_version=model.version,
                                 before_index=int(ends[0]), limit=rule.memory)
-    alert = sql.active_alert(conn, asset.asset_id)
+    alert = store.active_alert(conn, asset.asset_id)
     state = RuleState.from_history(history, alert.severity if alert else None, rule)  # type: ignore[arg-type]
     shelved = asset.shelved_until is not None and asset.shelved_until > now
     names = model.channels
@@ -641,8 +638,8 @@ def _run_rule(
         tops = top_channels(sh, names)
         detail = {"score": round(score, 6), "warning": rule.warning, "critical": rule.critical, "threshold_version": threshold.version}
         if transition is not None and transition.kind == "open":
-            alert = rule_alerts.open_alert_row(
-                conn, sql, asset_id=asset.asset_id, severity=transition.severity, at=at, score=score, top_channels=tops,
+            alert = rule_alerts.open_alert(
+                conn, asset_id=asset.asset_id, severity=transition.severity, at=at, score=score, top_channels=tops,
                 model_id=model.model_id, model_version=model.version, threshold_version_id=threshold.id, details=detail,
             )
             result.alerts_opened += 1
@@ -653,11 +650,11 @@ def _run_rule(
             continue
         rule_alerts.extend_alert(alert, at=at, score=score, top_channels=tops)
         if transition is not None and transition.kind == "escalate":
-            rule_alerts.escalate_alert_row(conn, sql, alert, at=at, details=detail)
+            rule_alerts.escalate_alert(conn, alert, at=at, details=detail)
             result.alerts_escalated += 1
         elif transition is not None and transition.kind == "return":
-            rule_alerts.return_alert_row(conn, sql, alert, at=at, details=detail)
+            rule_alerts.return_alert(conn, alert, at=at, details=detail)
             result.alerts_returned += 1
             alert = None
     if alert is not None and alert.dirty:
-        sql.save_alert(conn, alert)
+        store.save_alert(conn, alert)

@@ -54,8 +54,7 @@ class Prepared:
         for n in self._names:
             t = by_name[n].type
             procs.append(t.dialect_impl(dialect).bind_processor(dialect))
-        self._procs = procs
-        self._any_proc = any(p is not None for p in procs)
+        self._convert = [(i, p) for i, p in enumerate(procs) if p is not None]  # the places needing conversion
         self._dbapi = dialect.loaded_dbapi
         self._dialect = dialect
         selected = getattr(statement, "selected_columns", None)
@@ -63,39 +62,26 @@ class Prepared:
         self._result_types = [col.type for col in (list(selected) if selected is not None else list(returning))]
         # Result processors need the driver's type codes (PostgreSQL's numeric OIDs), known
         # from the first execution's cursor description.
-        self._result_procs: list[Processor | None] | None = None
+        self._result_convert: list[tuple[int, Processor]] | None = None
 
     def _args(self, params: Mapping[str, Any]) -> Any:
-        if self._fixed:
-            params = {**self._fixed, **params}
-        if self._any_proc:
-            values = [p(params[k]) if p is not None else params[k] for k, p in zip(self._keys, self._procs)]
-        else:
-            values = [params[k] for k in self._keys]
-        return tuple(values) if self._positional else dict(zip(self._names, values))
+        return self._many_args((params,))[0]
 
     def _many_args(self, rows: Iterable[Mapping[str, Any]]) -> list[Any]:
-        """Arguments of many rows; a value that is the same object as the previous row's in
-        that place (a batch's received_at, its asset id) is converted once."""
-        if not self._any_proc:
-            return [self._args(r) for r in rows]
-        n = len(self._keys)
-        last_in: list[Any] = [object()] * n
-        last_out: list[Any] = [None] * n
+        """The driver's arguments for each row of bindparam values; a value that is the same
+        object as the previous row's in that place (a batch's received_at) is converted once."""
+        last_in: list[Any] = [object()] * len(self._keys)
+        last_out: list[Any] = [None] * len(self._keys)
         out = []
         for r in rows:
             if self._fixed:
                 r = {**self._fixed, **r}
-            values = []
-            for i, (k, p) in enumerate(zip(self._keys, self._procs)):
-                v = r[k]
-                if p is None:
-                    values.append(v)
-                elif v is last_in[i]:
-                    values.append(last_out[i])
-                else:
+            values = [r[k] for k in self._keys]
+            for i, p in self._convert:
+                v = values[i]
+                if v is not last_in[i]:
                     last_in[i], last_out[i] = v, p(v)
-                    values.append(last_out[i])
+                values[i] = last_out[i]
             out.append(tuple(values) if self._positional else dict(zip(self._names, values)))
         return out
 
@@ -134,19 +120,23 @@ class Prepared:
         try:
             cur.execute(self.sql, args)
             fetched: Sequence[Sequence[Any]] = cur.fetchall()
-            if self._result_procs is None:
+            if self._result_convert is None:
                 codes = [d[1] for d in cur.description] if cur.description else [None] * len(self._result_types)
-                self._result_procs = [
-                    t.dialect_impl(self._dialect).result_processor(self._dialect, code) for t, code in zip(self._result_types, codes)
-                ]
+                procs = [t.dialect_impl(self._dialect).result_processor(self._dialect, code) for t, code in zip(self._result_types, codes)]
+                self._result_convert = [(i, p) for i, p in enumerate(procs) if p is not None]
         except self._dbapi.Error as e:
             raise self._fail(e, args) from e
         finally:
             cur.close()
-        procs = self._result_procs
-        if not any(p is not None for p in procs):
+        if not self._result_convert:
             return [tuple(r) for r in fetched]
-        return [tuple(p(v) if p is not None else v for p, v in zip(procs, r)) for r in fetched]
+        out = []
+        for r in fetched:
+            row = list(r)
+            for i, p in self._result_convert:
+                row[i] = p(row[i])
+            out.append(tuple(row))
+        return out
 
 
 _BY_DIALECT: weakref.WeakKeyDictionary[Dialect, dict[str, Prepared]] = weakref.WeakKeyDictionary()

@@ -32,9 +32,9 @@ def _chunks(items: Sequence[Any], n: int = IN_CHUNK) -> Iterable[Sequence[Any]]:
         yield items[i : i + n]
 
 
-# The ingest path's statements are built once, with bound parameters, and reused: building a
-# select (operator overloading, coercions, its cache key) costs about as much as running it
-# on SQLite, and the ingest path runs a dozen per request (bench/ingest.py).
+# Statements asked on every request are built once, with bound parameters, and reused:
+# building a select (operator overloading, coercions, its cache key) costs about as much as
+# running it on SQLite. The ingest path's own statements are in service/db/ingest_sql.py.
 
 
 @cache
@@ -72,21 +72,6 @@ def _window_ends_in(table: type[WindowScore] | type[SkippedWindow]) -> Select[An
         table.model_version == bindparam("model_version"),
         table.window_end_index >= bindparam("lo"),
         table.window_end_index <= bindparam("hi"),
-    )
-
-
-@cache
-def _recent_scores() -> Select[Any]:
-    return (
-        select(WindowScore.score)
-        .where(
-            WindowScore.asset_id == bindparam("asset_id"),
-            WindowScore.model_id == bindparam("model_id"),
-            WindowScore.model_version == bindparam("model_version"),
-            WindowScore.window_end_index < bindparam("before_index"),
-        )
-        .order_by(WindowScore.window_end_index.desc())
-        .limit(bindparam("limit", type_=Integer))
     )
 
 
@@ -169,14 +154,6 @@ def existing_readings(session: Session, *, asset_id: str, ts_ms: Sequence[int]) 
     return found
 
 
-def insert_readings(session: Session, *, asset_id: str, rows: Sequence[tuple[int, dict[str, Any]]], received_at: datetime) -> None:
-    if rows:  # Core insert: the ORM's per-row bookkeeping is most of the cost at batch sizes
-        session.connection().execute(
-            insert(Reading.__table__),
-            [{"asset_id": asset_id, "ts_ms": t, "values": v, "received_at": received_at} for t, v in rows],
-        )
-
-
 def reading_span_ms(session: Session, *, asset_id: str) -> tuple[int | None, int | None]:
     """(oldest, newest) stored reading time of the asset in epoch ms."""
     # Two scalar subqueries, each a single index seek: min() and max() in one SELECT make
@@ -210,11 +187,6 @@ def window_ends_in(
     return {int(r) for r in rows}
 
 
-def insert_window_scores(session: Session, *, rows: Sequence[dict[str, Any]]) -> None:
-    if rows:
-        session.connection().execute(insert(WindowScore.__table__), list(rows))
-
-
 def insert_skipped(session: Session, *, rows: Sequence[dict[str, Any]]) -> None:
     if rows:
         session.connection().execute(insert(SkippedWindow.__table__), list(rows))
@@ -230,15 +202,6 @@ def delete_skipped(session: Session, *, asset_id: str, model_id: str, model_vers
                 SkippedWindow.window_end_index.in_(part),
             )
         )
-
-
-def recent_scores(session: Session, *, asset_id: str, model_id: str, model_version: str, before_index: int, limit: int) -> list[float]:
-    """The last `limit` stored scores before window end `before_index`, oldest first."""
-    rows = session.connection().scalars(
-        _recent_scores(),
-        {"asset_id": asset_id, "model_id": model_id, "model_version": model_version, "before_index": before_index, "limit": limit},
-    ).all()
-    return [float(s) for s in reversed(rows)]
 
 
 @dataclass(frozen=True)

@@ -132,8 +132,9 @@ def add_alert(
         from service.db.thresholds import threshold_in_force
 
         tv = threshold_in_force(s, asset_id=asset_id)
+        conn = s.connection()
         alert = rule_alerts.open_alert(
-            s,
+            conn,
             asset_id=asset_id,
             severity=severity,
             at=opened_at,
@@ -146,7 +147,7 @@ def add_alert(
         )
         if returned_at is not None:
             rule_alerts.extend_alert(alert, at=returned_at, score=peak * 0.5, top_channels=[])
-            rule_alerts.return_alert(s, alert, at=returned_at, details={})
+            rule_alerts.return_alert(conn, alert, at=returned_at, details={})
         return alert.id
 
 

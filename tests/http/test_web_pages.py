@@ -205,13 +205,14 @@ def test_alert_list_pages_newest_first_without_repeats(env: Env) -> None:
     env.client.cookies.clear()
     base = datetime(2026, 9, 1, tzinfo=timezone.utc)
     with env.client.app.state.db.transaction() as s:
+        conn = s.connection()
         for i in range(27):  # one active alert per asset at a time: open and return each in turn
             alert = rule_alerts.open_alert(
-                s, asset_id="pump-01", severity="warning", at=base + timedelta(hours=i), score=5.0,
+                conn, asset_id="pump-01", severity="warning", at=base + timedelta(hours=i), score=5.0,
                 top_channels=[{"channel": "vibration_mm_s", "share": 1.0}], model_id="test-pumps", model_version="1",
                 threshold_version_id=None, details={},
             )
-            rule_alerts.return_alert(s, alert, at=base + timedelta(hours=i, minutes=30), details={})
+            rule_alerts.return_alert(conn, alert, at=base + timedelta(hours=i, minutes=30), details={})
     sign_in(env, "maintenance")
     ids_in_db = [i for (i,) in env.rows("SELECT id FROM alerts ORDER BY opened_at DESC, id DESC")]
     first = env.client.get("/alerts")
