@@ -30,8 +30,8 @@ from threadpoolctl import threadpool_limits  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service import grid as G  # noqa: E402
 from service.scoring import DEFAULT_CHUNK, OnnxScorer  # noqa: E402
+from training import demo_data  # noqa: E402
 
 BATCHES = (1, 32, 256)
 CHUNKS = (8, 16, 32, 64, 128, 256)
@@ -83,17 +83,6 @@ def matmul_flops(seconds: float) -> tuple[float, int]:
     return best, best_n
 
 
-def real_windows(window: int, count: int) -> np.ndarray:
-    from training import demo_data
-
-    demo = demo_data.generate(assets=1, days=3, seed=5, outages=False)
-    a = demo.assets[0]
-    g = G.align(demo.times_s[a], demo.values[a], demo.period_s)
-    filled = G.Grid(g.start, G.fill_gaps(g.values, 5))
-    ends = G.window_ends(filled, window, 1)
-    return G.cut_windows(filled, ends[:count], window)
-
-
 def torch_model(manifest):  # type: ignore[no-untyped-def]
     """The manifest's architecture rebuilt in torch (seeded weights: speed does not depend on them)."""
     import torch
@@ -134,7 +123,7 @@ def main() -> int:
         scorer = OnnxScorer(args.model, threads=1)
         m = scorer.manifest
         flops = m.architecture.flops_per_window
-        windows = real_windows(m.window, max(BATCHES))
+        windows = demo_data.sample_windows(m.window, max(BATCHES), stride=1, days=3, seed=5)
         model = torch_model(m)
         mm_rate, mm_n = matmul_flops(args.seconds * 1.5)
 

@@ -625,3 +625,16 @@ def write(demo: DemoData, out_dir: str | os.PathLike[str]) -> tuple[Path, Path]:
 def demo_day(seed: int = DEFAULT_SEED, assets: int = DEFAULT_ASSETS, start: str | float | None = None) -> DemoData:
     """One day of the same fleet after the default run with two clear faults (for the service demo)."""
     return generate(assets=assets, days=1, seed=seed, start=start, scenario="demo_day")
+
+
+def sample_windows(window: int, count: int, *, stride: int, days: float, seed: int, max_fill_steps: int = 5) -> np.ndarray:
+    """Up to `count` float32 (B, W, C) windows of one normal demo pump (no outages), cut by
+    service/grid.py the way the service cuts them: for benches and reference checks."""
+    from service import grid as G
+
+    demo = generate(assets=1, days=days, seed=seed, outages=False)
+    a = demo.assets[0]
+    g = G.align(demo.times_s[a], demo.values[a], demo.period_s)
+    filled = G.Grid(g.start, G.fill_gaps(g.values, max_fill_steps))
+    ends = G.window_ends(filled, window, stride)
+    return G.cut_windows(filled, ends[:count], window)

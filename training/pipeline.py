@@ -20,7 +20,7 @@ from service import grid as G
 from service.manifest import Channel, GapPolicy, Manifest, Scaler, TrainingSummary, ValidationFigures
 from training.calibrate import Calibration, calibrate, fit_mahalanobis, model_outputs, score_windows
 from training.config import TrainConfig
-from training.dataset import Prepared, prepare_with
+from training.dataset import ArrayWindows, Prepared, prepare_with
 from training.export import Parity, write_model_folder
 from training.fit import FitResult, even_subset, evaluate_loss, fit, make_model
 from training.logs import Event, LogSet, read_events, read_logs
@@ -99,22 +99,11 @@ def event_windows(
     return EventWindows(windows[pick], kind_arr[pick], asset_arr[pick])
 
 
-class _Arrays:
-    def __init__(self, a: np.ndarray) -> None:
-        self.a = a
-
-    def __len__(self) -> int:
-        return len(self.a)
-
-    def gather(self, idx: np.ndarray) -> np.ndarray:
-        return self.a[idx]
-
-
 def separation(
     model: Reconstructor, normal_scores: np.ndarray, faulty: EventWindows
 ) -> tuple[dict[str, float], np.ndarray]:
     """Fault vs normal window scores: median ratio and ROC-AUC, pooled and per fault kind."""
-    fault_scores = score_windows(model, _Arrays(faulty.windows))
+    fault_scores = score_windows(model, ArrayWindows(faulty.windows))
     labels = np.r_[np.zeros(len(normal_scores)), np.ones(len(fault_scores))]
     out = {
         "fault_windows": float(len(fault_scores)),
@@ -163,7 +152,7 @@ def _examples(
                 continue
             idx = np.flatnonzero(mask)
             i = int(idx[np.argsort(fault_scores[idx])[len(idx) // 2]])
-            for _, recon, _, score in model_outputs(model, _Arrays(faulty.windows), np.array([i])):
+            for _, recon, _, score in model_outputs(model, ArrayWindows(faulty.windows), np.array([i])):
                 examples.append(
                     Example(f"faulty window ({faulty.assets[i]}, labelled {kind}, median of its kind)", faulty.windows[i], recon[0], float(score[0]))
                 )

@@ -18,10 +18,10 @@ import pytest
 
 torch = pytest.importorskip("torch")
 
-from service import grid as G  # noqa: E402
 from service.manifest import LayerSpec, Manifest, load_calibration, load_manifest  # noqa: E402
 from service.scoring import OnnxScorer  # noqa: E402
 from training import demo_data  # noqa: E402
+from training.dataset import ArrayWindows  # noqa: E402
 from training.model import LSTMLayer  # noqa: E402
 
 BUNDLED = Path(__file__).resolve().parents[2] / "models" / "booster-pumps" / "1"
@@ -81,15 +81,6 @@ def test_backward_direction_is_the_same_recurrence_over_the_reversed_window() ->
     np.testing.assert_allclose(steps.numpy()[:, :, 3:], rev[:, ::-1], rtol=1e-5, atol=1e-6)
 
 
-def _real_windows(window: int, n: int) -> np.ndarray:
-    demo = demo_data.generate(assets=1, days=1, seed=3, outages=False)
-    a = demo.assets[0]
-    g = G.align(demo.times_s[a], demo.values[a], demo.period_s)
-    filled = G.Grid(g.start, G.fill_gaps(g.values, 5))
-    ends = G.window_ends(filled, window, 10)
-    return G.cut_windows(filled, ends[:n], window)
-
-
 @pytest.mark.parametrize("score", ["mean_squared", "mahalanobis"])
 def test_exported_graph_matches_torch_on_real_demo_windows(tmp_path: Path, score: str) -> None:
     """Reference: the PyTorch model, on windows cut from the demo fleet by service/grid.py,
@@ -104,9 +95,9 @@ def test_exported_graph_matches_torch_on_real_demo_windows(tmp_path: Path, score
     cfg = ModelConfig(hidden=8, latent=3, score=score)
     torch.manual_seed(0)
     model = Reconstructor(cfg, c, w, np.array(bundled.scaler.center), np.array(bundled.scaler.scale)).eval()
-    real = _real_windows(w, 96)
+    real = demo_data.sample_windows(w, 96, stride=10, days=1, seed=3)
     if score == "mahalanobis":
-        fit_mahalanobis(model, _Arr(real[:48]), cfg)
+        fit_mahalanobis(model, ArrayWindows(real[:48]), cfg)
 
     def build(sha: str, parity) -> Manifest:  # type: ignore[no-untyped-def]
         return bundled.model_copy(
@@ -127,14 +118,3 @@ def test_exported_graph_matches_torch_on_real_demo_windows(tmp_path: Path, score
     np.testing.assert_allclose(got.residual, resid, rtol=1e-4, atol=1e-5)
     scale = np.array(bundled.scaler.scale)
     assert np.max(np.abs(got.reconstruction - recon) / scale) < 1e-4
-
-
-class _Arr:
-    def __init__(self, a: np.ndarray) -> None:
-        self.a = a
-
-    def __len__(self) -> int:
-        return len(self.a)
-
-    def gather(self, idx: np.ndarray) -> np.ndarray:
-        return self.a[idx]

@@ -12,6 +12,7 @@ from service.manifest import CalibrationScores, Thresholds  # noqa: E402
 from service.thresholds import WEEK_S  # noqa: E402
 from training.calibrate import calibrate, choose_thresholds, per_asset_series  # noqa: E402
 from training.config import CalibrationConfig, ModelConfig  # noqa: E402
+from training.dataset import ArrayWindows  # noqa: E402
 from training.model import Reconstructor  # noqa: E402
 
 PERIOD_S = 600.0  # one window end every 10 min
@@ -76,20 +77,6 @@ def test_per_asset_series_are_in_time_order() -> None:
     assert out["b"][0].tolist() == [10, 20, 30] and out["b"][1].tolist() == [4.0, 3.0, 5.0]
 
 
-class IndexedArr:
-    def __init__(self, windows: np.ndarray, assets: np.ndarray, ends: np.ndarray) -> None:
-        self.windows, self.assets, self.end_index = windows.astype(np.float32), assets, ends
-
-    def __len__(self) -> int:
-        return len(self.windows)
-
-    def gather(self, idx: np.ndarray) -> np.ndarray:
-        return self.windows[idx]
-
-    def asset_of(self, idx: np.ndarray) -> np.ndarray:
-        return self.assets[idx]
-
-
 def test_calibrate_scores_with_the_model_and_writes_a_valid_scores_file() -> None:
     torch.manual_seed(0)
     w, c = 8, 2
@@ -99,7 +86,7 @@ def test_calibrate_scores_with_the_model_and_writes_a_valid_scores_file() -> Non
     windows = rng.normal(size=(n, w, c))
     assets = np.repeat(np.array(["x", "y"]), n // 2)
     ends = np.tile(np.arange(n // 2) * 10, 2)[::-1].copy()  # reversed: calibrate must sort
-    cal = calibrate(model, IndexedArr(windows, assets, ends), 6 * WEEK_S, PERIOD_S, CalibrationConfig())
+    cal = calibrate(model, ArrayWindows(windows, assets, ends), 6 * WEEK_S, PERIOD_S, CalibrationConfig())
     assert cal.assets == ["x", "y"]
     for a in ("x", "y"):
         e, s = cal.series[a]
@@ -111,4 +98,4 @@ def test_calibrate_scores_with_the_model_and_writes_a_valid_scores_file() -> Non
     assert len(f.assets["y"].score) == n // 2
     assert sum(cal.false_alerts().values()) / 6 <= 0.25 + 1e-9  # replayed warning rate within budget
     with pytest.raises(ValueError, match="no calibration windows"):
-        calibrate(model, IndexedArr(windows[:0], assets[:0], ends[:0]), 1.0, PERIOD_S, CalibrationConfig())
+        calibrate(model, ArrayWindows(windows[:0], assets[:0], ends[:0]), 1.0, PERIOD_S, CalibrationConfig())

@@ -9,6 +9,7 @@ torch = pytest.importorskip("torch")
 
 from service.manifest import LayerSpec  # noqa: E402
 from training.config import FitConfig, ModelConfig  # noqa: E402
+from training.dataset import ArrayWindows  # noqa: E402
 from training.fit import even_subset, fit, make_model  # noqa: E402
 from training.model import (  # noqa: E402
     LSTMLayer,
@@ -21,17 +22,6 @@ from training.model import (  # noqa: E402
 C, W = 4, 12
 CENTER = np.array([10.0, -2.0, 300.0, 0.5])
 SCALE = np.array([2.0, 0.5, 25.0, 0.1])
-
-
-class Arr:
-    def __init__(self, a: np.ndarray) -> None:
-        self.a = a.astype(np.float32)
-
-    def __len__(self) -> int:
-        return len(self.a)
-
-    def gather(self, idx: np.ndarray) -> np.ndarray:
-        return self.a[idx]
 
 
 def sine_windows(n: int, seed: int) -> np.ndarray:
@@ -135,7 +125,7 @@ def test_error_statistics_regularise_a_singular_covariance() -> None:
 
 
 def _tiny_fit(seed: int, epochs: int = 2) -> tuple[Reconstructor, object]:
-    train, val = Arr(sine_windows(256, 10)), Arr(sine_windows(64, 11))
+    train, val = ArrayWindows(sine_windows(256, 10)), ArrayWindows(sine_windows(64, 11))
     cfg = FitConfig(epochs=epochs, batch_size=32, lr=1e-2, patience=5, seed=seed, threads=1)
     model = make_model(ModelConfig(hidden=6, latent=3), C, W, CENTER, SCALE, seed)
     return model, fit(model, train, val, cfg, progress=False)
@@ -174,7 +164,7 @@ def test_early_stopping_restores_best_weights(monkeypatch: pytest.MonkeyPatch) -
     monkeypatch.setattr(fit_module, "evaluate_loss", fake_loss)
     model = make_model(ModelConfig(hidden=4, latent=2), C, W, CENTER, SCALE, 0)
     cfg = FitConfig(epochs=10, batch_size=32, lr=1e-2, patience=2, seed=0, threads=1)
-    result = fit(model, Arr(sine_windows(64, 0)), Arr(sine_windows(16, 1)), cfg, progress=False)
+    result = fit(model, ArrayWindows(sine_windows(64, 0)), ArrayWindows(sine_windows(16, 1)), cfg, progress=False)
     assert result.epochs_run == 3 and result.best_epoch == 1
     final = model.state_dict()
     assert all(torch.equal(final[k], seen[0][k]) for k in final)
@@ -184,16 +174,16 @@ def test_early_stopping_restores_best_weights(monkeypatch: pytest.MonkeyPatch) -
 def test_huber_loss_option_trains() -> None:
     model = make_model(ModelConfig(hidden=4, latent=2), C, W, CENTER, SCALE, 0)
     cfg = FitConfig(epochs=2, batch_size=32, lr=1e-2, loss="huber", seed=0, threads=1)
-    result = fit(model, Arr(sine_windows(64, 0)), Arr(sine_windows(16, 1)), cfg, progress=False)
+    result = fit(model, ArrayWindows(sine_windows(64, 0)), ArrayWindows(sine_windows(16, 1)), cfg, progress=False)
     assert np.all(np.isfinite(result.val_loss))
 
 
 def test_fit_refuses_empty_parts() -> None:
     model = make_model(ModelConfig(hidden=4, latent=2), C, W, CENTER, SCALE, 0)
     with pytest.raises(ValueError, match="no training windows"):
-        fit(model, Arr(np.empty((0, W, C))), Arr(sine_windows(4, 0)), FitConfig(threads=1), progress=False)
+        fit(model, ArrayWindows(np.empty((0, W, C))), ArrayWindows(sine_windows(4, 0)), FitConfig(threads=1), progress=False)
     with pytest.raises(ValueError, match="no validation windows"):
-        fit(model, Arr(sine_windows(4, 0)), Arr(np.empty((0, W, C))), FitConfig(threads=1), progress=False)
+        fit(model, ArrayWindows(sine_windows(4, 0)), ArrayWindows(np.empty((0, W, C))), FitConfig(threads=1), progress=False)
 
 
 def test_even_subset_spreads_over_the_range() -> None:
