@@ -84,8 +84,16 @@ async def _retention_loop(app: FastAPI) -> None:
     settings: Settings = app.state.settings
     while True:
         cutoff = datetime.now(timezone.utc) - timedelta(days=settings.retention_days)
+        # The prune runs in a thread that holds a pooled connection; a shutdown that cancels
+        # this loop waits for it, so the pool is disposed only after the connection is back
+        # (one returned to a disposed pool is never closed).
+        job = asyncio.ensure_future(asyncio.to_thread(_prune_once, app.state.db, cutoff, prune))
         try:
-            removed = await asyncio.to_thread(_prune_once, app.state.db, cutoff, prune)
+            try:
+                removed = await asyncio.shield(job)
+            except asyncio.CancelledError:
+                await asyncio.wait([job])
+                raise
             for table, n in removed.items():
                 if n:
                     app.state.metrics.pruned_rows.inc(n, table=table)

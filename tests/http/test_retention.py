@@ -34,3 +34,41 @@ def test_background_pruning_keeps_alerts_and_audit(tmp_path, tiny_dir) -> None:
         assert 'echowatch_retention_pruned_rows_total{table="readings"} 26' in metrics
     finally:
         gen.close()
+
+
+def test_shutdown_waits_for_a_running_prune_before_closing_the_database(tmp_path, tiny_dir, monkeypatch) -> None:
+    """The prune thread holds a pooled connection; the database must be disposed only after it
+    is back (a connection handed back to a disposed pool is never closed: psycopg warns when
+    it is collected). The prunes here are made slow and back to back, and the service is
+    stopped just after one has begun."""
+    import threading
+
+    import service.db.readings as readings_module
+
+    real_prune = readings_module.prune
+    begun, order = threading.Event(), []
+
+    def slow_prune(session, *, before):
+        begun.set()
+        time.sleep(0.4)
+        removed = real_prune(session, before=before)
+        order.append("prune finished")
+        return removed
+
+    monkeypatch.setattr(readings_module, "prune", slow_prune)
+    gen = start_env(tmp_path, tiny_dir, retention_days=30, retention_interval_s=0.01)
+    env = next(gen)
+    db = env.client.app.state.db
+    real_dispose = db.dispose
+
+    def dispose():
+        order.append("database disposed")
+        real_dispose()
+
+    db.dispose = dispose
+    try:
+        begun.clear()
+        assert begun.wait(10), "no prune began"
+    finally:
+        gen.close()  # the lifespan's end, while that prune sleeps
+    assert order[-2:] == ["prune finished", "database disposed"], order
