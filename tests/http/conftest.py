@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 import sys
 from collections.abc import Iterator
 from pathlib import Path
@@ -11,7 +12,25 @@ import pytest
 sys.path.insert(0, str(Path(__file__).parent))
 
 import tiny_model  # noqa: E402
-from service_env import Env, bundled_model_dir, start_env  # noqa: E402
+from service_env import TEST_DATABASE_URL, Env, bundled_model_dir, start_env  # noqa: E402
+
+
+@pytest.fixture(autouse=True)
+def no_database_connection_left_open() -> Iterator[None]:
+    """On the PostgreSQL run: after each test (and its services' shutdown) no driver
+    connection may still be open. One left behind (say, handed back to a pool already
+    disposed) is otherwise only noticed when the collector finds it, as a warning at the end
+    of the session that names no test."""
+    yield
+    if not TEST_DATABASE_URL:
+        return
+    import psycopg
+
+    gc.collect()
+    left = [c for c in gc.get_objects() if isinstance(c, psycopg.Connection) and not c.closed]
+    for c in left:
+        c.close()  # so the next tests do not report it again
+    assert not left, f"{len(left)} PostgreSQL connection(s) still open after the test"
 
 
 @pytest.fixture
