@@ -9,6 +9,13 @@ batch size. Each figure is the best of several timed rounds, ORT and torch takin
 (the machine is shared).
 
     python bench/scoring.py [--model models/booster-pumps/1] [--seconds 6.0]
+    python bench/scoring.py --shapes   # batch 256 across model shapes (random weights)
+
+`--shapes` answers whether the batch-256 margin is a matter of the model's shape: it
+exports several shapes (seeded random weights; speed does not depend on them) with the
+trainer's own export (lean graph included), scores them through the service's session
+options in chunks of the service's default, and prints ORT / torch at batch 256 and batch 1
+with the matmul share, side by side in one run.
 """
 
 from __future__ import annotations
@@ -30,7 +37,7 @@ from threadpoolctl import threadpool_limits  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service.scoring import DEFAULT_CHUNK, OnnxScorer  # noqa: E402
+from service.scoring import DEFAULT_CHUNK, OnnxScorer, session_options  # noqa: E402
 from training import demo_data  # noqa: E402
 
 BATCHES = (1, 32, 256)
@@ -110,13 +117,77 @@ def torch_model(manifest):  # type: ignore[no-untyped-def]
     return model.eval()
 
 
+# (label, ModelConfig overrides): the bundled shape first, then narrower, wider, shallower,
+# summed directions and a unidirectional stack.
+SHAPES: tuple[tuple[str, dict[str, object]], ...] = (
+    ("bundled: 64 wide, 2+1 layers, concat", {}),
+    ("48 wide", {"hidden": 48}),
+    ("96 wide", {"hidden": 96}),
+    ("1+1 layers", {"layers": 1}),
+    ("merge sum", {"merge": "sum"}),
+    ("unidirectional, 3+2 layers", {"bidirectional": False, "layers": 3, "decoder_layers": 2}),
+)
+
+
+def shapes_table(manifest, seconds: float) -> int:  # type: ignore[no-untyped-def]
+    import tempfile
+
+    import onnxruntime as ort
+    import torch
+
+    from training.config import ModelConfig
+    from training.export import export_onnx
+    from training.model import Reconstructor, flops_per_window
+
+    n_ch = len(manifest.channels)
+    windows = demo_data.sample_windows(manifest.window, 256, stride=1, days=3, seed=5)
+    mm_rate, mm_n = matmul_flops(seconds * 1.5)
+    print(f"numpy float32 matmul, 1 thread: {mm_rate / 1e9:.2f} GFLOP/s (best at {mm_n}x{mm_n}); "
+          f"ORT in chunks of {DEFAULT_CHUNK} with the service's session options; torch eager, 1 thread")
+    print()
+    print("| shape | MFLOP/window | b256 ORT w/s | b256 torch w/s | b256 ORT / torch | b256 share of matmul | b1 ORT / torch |")
+    print("|---|---:|---:|---:|---:|---:|---:|")
+    with tempfile.TemporaryDirectory() as tmp:
+        for i, (label, overrides) in enumerate(SHAPES):
+            cfg = ModelConfig(**overrides)  # type: ignore[arg-type]
+            torch.manual_seed(0)
+            model = Reconstructor(cfg, n_ch, manifest.window, np.array(manifest.scaler.center), np.array(manifest.scaler.scale))
+            model.set_mahalanobis(np.array(manifest.score.error_mean), np.array(manifest.score.error_precision))
+            model.eval()
+            path = Path(tmp) / f"shape{i}.onnx"
+            export_onnx(model, path)
+            session = ort.InferenceSession(str(path), sess_options=session_options(1), providers=["CPUExecutionProvider"])
+            flops = flops_per_window(cfg, n_ch, manifest.window)
+
+            def ort_run(batch: np.ndarray, session=session) -> None:  # type: ignore[no-untyped-def]
+                for j in range(0, len(batch), DEFAULT_CHUNK):
+                    session.run(None, {"readings": batch[j : j + DEFAULT_CHUNK]})
+
+            def torch_run(x: torch.Tensor, model=model) -> None:  # type: ignore[no-untyped-def]
+                with torch.inference_mode():
+                    model(x)
+
+            big, one = windows, windows[:1]
+            o256, t256 = best_rates([lambda: ort_run(big), lambda: torch_run(torch.from_numpy(big))], 256, seconds)
+            o1, t1 = best_rates([lambda: ort_run(one), lambda: torch_run(torch.from_numpy(one))], 1, seconds / 2)
+            print(f"| {label} | {flops / 1e6:.2f} | {o256:,.0f} | {t256:,.0f} | {o256 / t256:.2f}x | "
+                  f"{o256 * flops / mm_rate:.0%} | {o1 / t1:.2f}x |", flush=True)
+    return 0
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--model", type=Path, default=ROOT / "models" / "booster-pumps" / "1")
     parser.add_argument("--seconds", type=float, default=6.0, help="timing budget per figure (split over the rounds)")
+    parser.add_argument("--shapes", action="store_true", help="batch 256 across model shapes instead of the bundled model's table")
     args = parser.parse_args()
 
     import torch
+
+    if args.shapes:
+        torch.set_num_threads(1)
+        with threadpool_limits(limits=1):
+            return shapes_table(OnnxScorer(args.model, threads=1).manifest, args.seconds)
 
     torch.set_num_threads(1)
     with threadpool_limits(limits=1):
