@@ -255,13 +255,45 @@ def _time_axis(frame: _Frame, parts: list[str], *, labels: bool = True) -> None:
             parts.append(f'<text class="tick" x="{x:.1f}" y="{bottom + 16:.1f}" text-anchor="middle">{escape(label)}</text>')
 
 
+def spread_labels(ys: Sequence[float], *, gap: float, top: float, bottom: float) -> list[float]:
+    """Baselines for labels wanted at `ys`, at least `gap` apart and in the same top-to-bottom
+    order as the lines they name (a label never swaps places with its neighbour's), moved
+    as little as a downward then upward sweep allows, kept within [top, bottom] when they fit."""
+    order = sorted(range(len(ys)), key=lambda i: ys[i])
+    placed = [ys[i] for i in order]
+    for k in range(1, len(placed)):
+        placed[k] = max(placed[k], placed[k - 1] + gap)
+    if placed and placed[-1] > bottom:
+        placed[-1] = bottom
+        for k in range(len(placed) - 2, -1, -1):
+            placed[k] = min(placed[k], placed[k + 1] - gap)
+    if placed and placed[0] < top:
+        shift = top - placed[0]
+        placed = [y + shift for y in placed]
+    out = [0.0] * len(ys)
+    for k, i in enumerate(order):
+        out[i] = placed[k]
+    return out
+
+
+def tick_text(v: float) -> str:
+    """An axis tick: as format_number, with 10,000 and up as 10k, 250k, 1M, so the value
+    axis stays narrow beside a large peak."""
+    mag = abs(v)
+    if mag >= 1e6:
+        return f"{format_number(v / 1e6)}M"
+    if mag >= 1e4:
+        return f"{format_number(v / 1e3)}k"
+    return format_number(v)
+
+
 def _value_axis(frame: _Frame, parts: list[str], ticks: Sequence[float]) -> None:
     right = frame.left + frame.width
     for v in ticks:
         y = frame.y(v)
         parts.append(f'<line class="grid" x1="{frame.left:.1f}" y1="{y:.1f}" x2="{right:.1f}" y2="{y:.1f}"/>')
         parts.append(
-            f'<text class="tick" x="{frame.left - 6:.1f}" y="{y + 4:.1f}" text-anchor="end">{escape(format_number(v))}</text>'
+            f'<text class="tick" x="{frame.left - 6:.1f}" y="{y + 4:.1f}" text-anchor="end">{escape(tick_text(v))}</text>'
         )
 
 
@@ -356,18 +388,14 @@ def score_chart(
             ("proposed warning", preview.warning, "level-proposed", "new warn"),
             ("proposed critical", preview.critical, "level-proposed level-proposed-critical", "new crit"),
         ]
-    label_ys: list[float] = []
-    for name, level, css, short in drawn:
+    for name, level, css, _short in drawn:
         y = frame.y(level)
         parts.append(
             f'<line class="level {css}" x1="{frame.left}" y1="{y:.1f}" x2="{right:.1f}" y2="{y:.1f}">'
             f"<title>{escape(name)} {escape(format_number(level))}</title></line>"
         )
-        ly = y + 4
-        for other in label_ys:  # keep level labels from printing over each other
-            if abs(ly - other) < 12:
-                ly = other + 12
-        label_ys.append(ly)
+    label_ys = spread_labels([frame.y(level) + 4 for _, level, _, _ in drawn], gap=12.0, top=frame.top + 8, bottom=frame.top + frame.height + 4)
+    for (_name, level, css, short), ly in zip(drawn, label_ys):
         parts.append(f'<text class="level-label {css}" x="{right + 6:.1f}" y="{ly:.1f}">{escape(short)} {escape(format_number(level))}</text>')
 
     gap_ms = (_typical_step(t_ms) or 0) * 2.5 or None

@@ -190,3 +190,31 @@ def test_long_series_draws_a_bounded_line_but_counts_every_window() -> None:
     drawn = sum(len(r) for r in points_of(root, "score-line"))
     assert drawn == int(group.get("data-points")) <= charts.MAX_DRAWN_POINTS
     assert min(p[1] for r in points_of(root, "score-line") for p in r) < level_y(root, "level-critical")  # the spike survives
+
+
+def test_level_labels_keep_the_lines_order_and_do_not_overlap() -> None:
+    """Levels close together (warning 54.6, critical 74.3 under a peak of 8000 on a log axis):
+    the critical label must sit above the warning label, as its line does, and 12 px apart."""
+    t = [T0 + i * STEP for i in range(20)]
+    scores = [3.0] * 8 + [8000.0] * 4 + [3.0] * 8
+    root = parse(charts.score_chart(t_ms=t, scores=scores, warning=54.6, critical=74.3, preview=Preview(43.7, 59.4)))
+    labels = {el.text.split()[0] + (" " + el.text.split()[1] if el.text.startswith("new") else ""): float(el.get("y"))
+              for el in root.iter(f"{SVG}text") if "level-label" in el.get("class", "")}
+    assert set(labels) == {"critical", "warning", "new warn", "new crit"}
+    # Lines from top to bottom: critical 74.3, new crit 59.4, warning 54.6, new warn 43.7.
+    order = sorted(labels, key=labels.get)
+    assert order == ["critical", "new crit", "warning", "new warn"], labels
+    ys = sorted(labels.values())
+    assert all(b - a >= 12 - 1e-9 for a, b in zip(ys, ys[1:]))
+
+
+def test_spread_labels_moves_little_and_stays_in_bounds() -> None:
+    assert charts.spread_labels([50.0, 100.0], gap=12, top=0, bottom=200) == [50.0, 100.0]  # apart already: untouched
+    assert charts.spread_labels([100.0, 95.0], gap=12, top=0, bottom=200) == [107.0, 95.0]  # order kept, pushed apart
+    assert charts.spread_labels([199.0, 198.0, 197.0], gap=12, top=0, bottom=200) == [200.0, 188.0, 176.0]  # pushed up from the bottom
+    assert charts.spread_labels([], gap=12, top=0, bottom=10) == []
+
+
+@pytest.mark.parametrize("value,text", [(1000.0, "1000"), (10000.0, "10k"), (250000.0, "250k"), (1e6, "1M"), (0.1, "0.1")])
+def test_tick_text_shortens_large_values(value: float, text: str) -> None:
+    assert charts.tick_text(value) == text
