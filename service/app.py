@@ -89,16 +89,16 @@ async def _retention_loop(app: FastAPI) -> None:
         # (one returned to a disposed pool is never closed).
         job = asyncio.ensure_future(asyncio.to_thread(_prune_once, app.state.db, cutoff, prune))
         try:
-            try:
-                removed = await asyncio.shield(job)
-            except asyncio.CancelledError:
-                await asyncio.wait([job])
-                raise
+            removed = await asyncio.shield(job)
+        except asyncio.CancelledError:
+            await asyncio.wait([job])
+            raise
+        except Exception as e:  # keep serving; the next round retries
+            log.warning("retention pruning failed: %s", e)
+        else:
             for table, n in removed.items():
                 if n:
                     app.state.metrics.pruned_rows.inc(n, table=table)
-        except Exception as e:  # keep serving; the next round retries
-            log.warning("retention pruning failed: %s", e)
         await asyncio.sleep(settings.retention_interval_s)
 
 

@@ -388,14 +388,13 @@ def score_chart(
             ("proposed warning", preview.warning, "level-proposed", "new warn"),
             ("proposed critical", preview.critical, "level-proposed level-proposed-critical", "new crit"),
         ]
-    for name, level, css, _short in drawn:
-        y = frame.y(level)
+    line_ys = [frame.y(level) for _, level, _, _ in drawn]
+    label_ys = spread_labels([y + 4 for y in line_ys], gap=12.0, top=frame.top + 8, bottom=frame.top + frame.height + 4)
+    for (name, level, css, short), y, ly in zip(drawn, line_ys, label_ys):
         parts.append(
             f'<line class="level {css}" x1="{frame.left}" y1="{y:.1f}" x2="{right:.1f}" y2="{y:.1f}">'
             f"<title>{escape(name)} {escape(format_number(level))}</title></line>"
         )
-    label_ys = spread_labels([frame.y(level) + 4 for _, level, _, _ in drawn], gap=12.0, top=frame.top + 8, bottom=frame.top + frame.height + 4)
-    for (_name, level, css, short), ly in zip(drawn, label_ys):
         parts.append(f'<text class="level-label {css}" x="{right + 6:.1f}" y="{ly:.1f}">{escape(short)} {escape(format_number(level))}</text>')
 
     gap_ms = (_typical_step(t_ms) or 0) * 2.5 or None
