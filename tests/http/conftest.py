@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
-import gc
 import sys
+import weakref
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
+from sqlalchemy import event
+from sqlalchemy.pool import Pool
 
 sys.path.insert(0, str(Path(__file__).parent))
 
@@ -15,19 +18,34 @@ import tiny_model  # noqa: E402
 from service_env import TEST_DATABASE_URL, Env, bundled_model_dir, start_env  # noqa: E402
 
 
+@pytest.fixture(scope="session")
+def opened_connections() -> Iterator[weakref.WeakSet[Any]]:
+    """On the PostgreSQL run, every driver connection any SQLAlchemy pool opens during the
+    session (weakly held, so a lost one stays listed until it is collected)."""
+    opened: weakref.WeakSet[Any] = weakref.WeakSet()
+    if not TEST_DATABASE_URL:
+        yield opened
+        return
+
+    import psycopg
+
+    def remember(dbapi_conn: Any, _record: Any) -> None:
+        if isinstance(dbapi_conn, psycopg.Connection):  # some tests of this run use SQLite files
+            opened.add(dbapi_conn)
+
+    event.listen(Pool, "connect", remember)
+    yield opened
+    event.remove(Pool, "connect", remember)
+
+
 @pytest.fixture(autouse=True)
-def no_database_connection_left_open() -> Iterator[None]:
+def no_database_connection_left_open(opened_connections: weakref.WeakSet[Any]) -> Iterator[None]:
     """On the PostgreSQL run: after each test (and its services' shutdown) no driver
     connection may still be open. One left behind (say, handed back to a pool already
     disposed) is otherwise only noticed when the collector finds it, as a warning at the end
     of the session that names no test."""
     yield
-    if not TEST_DATABASE_URL:
-        return
-    import psycopg
-
-    gc.collect()
-    left = [c for c in gc.get_objects() if isinstance(c, psycopg.Connection) and not c.closed]
+    left = [c for c in list(opened_connections) if not c.closed]
     for c in left:
         c.close()  # so the next tests do not report it again
     assert not left, f"{len(left)} PostgreSQL connection(s) still open after the test"
