@@ -13,8 +13,8 @@ batch size. Each figure is the best of several timed rounds, ORT and torch takin
 
 `--shapes` answers whether the batch-256 margin is a matter of the model's shape: it
 exports several shapes (seeded random weights; speed does not depend on them) with the
-trainer's own export (lean graph included), scores them through the service's session
-options in chunks of the service's default, and prints ORT / torch at batch 256 and batch 1
+trainer's own export (lean graph included), scores them through the service's OnnxScorer
+(its session options and chunking), and prints ORT / torch at batch 256 and batch 1
 with the matmul share, side by side in one run.
 """
 
@@ -37,7 +37,8 @@ from threadpoolctl import threadpool_limits  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service.scoring import DEFAULT_CHUNK, OnnxScorer, session_options  # noqa: E402
+from service.manifest import load_manifest  # noqa: E402
+from service.scoring import DEFAULT_CHUNK, OnnxScorer  # noqa: E402
 from training import demo_data  # noqa: E402
 
 BATCHES = (1, 32, 256)
@@ -92,10 +93,7 @@ def matmul_flops(seconds: float) -> tuple[float, int]:
 
 def torch_model(manifest):  # type: ignore[no-untyped-def]
     """The manifest's architecture rebuilt in torch (seeded weights: speed does not depend on them)."""
-    import torch
-
     from training.config import ModelConfig
-    from training.model import Reconstructor
 
     arch = manifest.architecture
     spec = arch.encoder[0]
@@ -110,9 +108,19 @@ def torch_model(manifest):  # type: ignore[no-untyped-def]
         merge=spec.merge,
         score=manifest.score.method,
     )
+    return build_torch(cfg, manifest)
+
+
+def build_torch(cfg, manifest):  # type: ignore[no-untyped-def]
+    """A Reconstructor of shape `cfg` on the manifest's channels, window, scaler and score
+    (seeded weights)."""
+    import torch
+
+    from training.model import Reconstructor
+
     torch.manual_seed(0)
     model = Reconstructor(cfg, len(manifest.channels), manifest.window, np.array(manifest.scaler.center), np.array(manifest.scaler.scale))
-    if manifest.score.method == "mahalanobis":
+    if cfg.score == "mahalanobis":
         model.set_mahalanobis(np.array(manifest.score.error_mean), np.array(manifest.score.error_precision))
     return model.eval()
 
@@ -130,48 +138,43 @@ SHAPES: tuple[tuple[str, dict[str, object]], ...] = (
 
 
 def shapes_table(manifest, seconds: float) -> int:  # type: ignore[no-untyped-def]
+    """Each of SHAPES exported by the trainer into a scratch model folder and scored through
+    the service's OnnxScorer (the bundled manifest describes its input and output)."""
     import tempfile
 
-    import onnxruntime as ort
     import torch
 
     from training.config import ModelConfig
     from training.export import export_onnx
-    from training.model import Reconstructor, flops_per_window
+    from training.model import flops_per_window
 
     n_ch = len(manifest.channels)
     windows = demo_data.sample_windows(manifest.window, 256, stride=1, days=3, seed=5)
     mm_rate, mm_n = matmul_flops(seconds * 1.5)
     print(f"numpy float32 matmul, 1 thread: {mm_rate / 1e9:.2f} GFLOP/s (best at {mm_n}x{mm_n}); "
-          f"ORT in chunks of {DEFAULT_CHUNK} with the service's session options; torch eager, 1 thread")
+          f"service path: OnnxScorer(threads=1, chunk_size={DEFAULT_CHUNK}); torch eager, 1 thread")
     print()
     print("| shape | MFLOP/window | b256 ORT w/s | b256 torch w/s | b256 ORT / torch | b256 share of matmul | b1 ORT / torch |")
     print("|---|---:|---:|---:|---:|---:|---:|")
-    with tempfile.TemporaryDirectory() as tmp:
-        for i, (label, overrides) in enumerate(SHAPES):
-            cfg = ModelConfig(**overrides)  # type: ignore[arg-type]
-            torch.manual_seed(0)
-            model = Reconstructor(cfg, n_ch, manifest.window, np.array(manifest.scaler.center), np.array(manifest.scaler.scale))
-            model.set_mahalanobis(np.array(manifest.score.error_mean), np.array(manifest.score.error_precision))
-            model.eval()
-            path = Path(tmp) / f"shape{i}.onnx"
-            export_onnx(model, path)
-            session = ort.InferenceSession(str(path), sess_options=session_options(1), providers=["CPUExecutionProvider"])
-            flops = flops_per_window(cfg, n_ch, manifest.window)
+    for label, overrides in SHAPES:
+        cfg = ModelConfig(**{"score": manifest.score.method, **overrides})  # type: ignore[arg-type]
+        model = build_torch(cfg, manifest)
+        flops = flops_per_window(cfg, n_ch, manifest.window)
+        with tempfile.TemporaryDirectory() as folder:
+            export_onnx(model, Path(folder) / manifest.onnx_file)
+            scorer = OnnxScorer(Path(folder), threads=1, manifest=manifest, verify_sha256=False)
+        rates = {}
+        for b in (256, 1):
+            batch, xt = windows[:b], torch.from_numpy(windows[:b])
 
-            def ort_run(batch: np.ndarray, session=session) -> None:  # type: ignore[no-untyped-def]
-                for j in range(0, len(batch), DEFAULT_CHUNK):
-                    session.run(None, {"readings": batch[j : j + DEFAULT_CHUNK]})
-
-            def torch_run(x: torch.Tensor, model=model) -> None:  # type: ignore[no-untyped-def]
+            def torch_run(xt=xt) -> None:  # type: ignore[no-untyped-def]
                 with torch.inference_mode():
-                    model(x)
+                    model(xt)
 
-            big, one = windows, windows[:1]
-            o256, t256 = best_rates([lambda: ort_run(big), lambda: torch_run(torch.from_numpy(big))], 256, seconds)
-            o1, t1 = best_rates([lambda: ort_run(one), lambda: torch_run(torch.from_numpy(one))], 1, seconds / 2)
-            print(f"| {label} | {flops / 1e6:.2f} | {o256:,.0f} | {t256:,.0f} | {o256 / t256:.2f}x | "
-                  f"{o256 * flops / mm_rate:.0%} | {o1 / t1:.2f}x |", flush=True)
+            rates[b] = best_rates([lambda batch=batch: scorer.score(batch), torch_run], b, seconds if b > 1 else seconds / 2)
+        (o256, t256), (o1, t1) = rates[256], rates[1]
+        print(f"| {label} | {flops / 1e6:.2f} | {o256:,.0f} | {t256:,.0f} | {o256 / t256:.2f}x | "
+              f"{o256 * flops / mm_rate:.0%} | {o1 / t1:.2f}x |", flush=True)
     return 0
 
 
@@ -184,13 +187,10 @@ def main() -> int:
 
     import torch
 
-    if args.shapes:
-        torch.set_num_threads(1)
-        with threadpool_limits(limits=1):
-            return shapes_table(OnnxScorer(args.model, threads=1).manifest, args.seconds)
-
     torch.set_num_threads(1)
     with threadpool_limits(limits=1):
+        if args.shapes:
+            return shapes_table(load_manifest(args.model), args.seconds)
         scorer = OnnxScorer(args.model, threads=1)
         m = scorer.manifest
         flops = m.architecture.flops_per_window

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Protocol
+from typing import Protocol
 
 import numpy as np
 
@@ -76,19 +76,6 @@ def validate_windows(windows: np.ndarray, manifest: Manifest) -> np.ndarray:
     return arr
 
 
-def session_options(threads: int) -> Any:
-    """ONNX Runtime's options for the service's sessions: `threads` intra-op threads, one
-    inter-op thread, sequential execution, every graph optimisation."""
-    import onnxruntime as ort
-
-    opts = ort.SessionOptions()
-    opts.intra_op_num_threads = max(int(threads), 1)
-    opts.inter_op_num_threads = 1
-    opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-    opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
-    return opts
-
-
 class OnnxScorer:
     """ONNX Runtime session over one model folder (manifest.json + model.onnx)."""
 
@@ -114,8 +101,13 @@ class OnnxScorer:
                 raise ScoringError(
                     f"{path}: sha256 {digest[:12]}... does not match the manifest's {self.manifest.onnx_sha256[:12]}..."
                 )
+        opts = ort.SessionOptions()
+        opts.intra_op_num_threads = max(int(threads), 1)
+        opts.inter_op_num_threads = 1
+        opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+        opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
         try:
-            self.session = ort.InferenceSession(str(path), sess_options=session_options(threads), providers=["CPUExecutionProvider"])
+            self.session = ort.InferenceSession(str(path), sess_options=opts, providers=["CPUExecutionProvider"])
         except Exception as e:  # onnxruntime raises its own exception types
             raise ScoringError(f"{path}: ONNX Runtime could not load the model ({e})") from e
         self._check_signature()
