@@ -1,4 +1,4 @@
-# echowatch: the two quick-start commands are `make demo` and `make test`; both set up
+# kilter: the two quick-start commands are `make demo` and `make test`; both set up
 # everything they need (a .venv here, Debian's chromium for browser tests).
 PYTHON ?= python3
 VENV := .venv
@@ -31,7 +31,7 @@ system-deps:
 	fi
 
 demo: install
-	$(BIN)/echowatch demo
+	$(BIN)/kilter demo
 
 # The second run: tests/http again on a private PostgreSQL server on 127.0.0.1 (tests/pg_server.py).
 test: install system-deps
@@ -39,7 +39,7 @@ test: install system-deps
 	@if ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1; then \
 	  url="$$($(BIN)/python tests/pg_server.py start --fresh)" || exit 1; \
 	  echo "tests/http on PostgreSQL ($$url)"; \
-	  ECHOWATCH_TEST_DATABASE_URL="$$url" $(BIN)/python -m pytest -q -p no:cacheprovider tests/http; rc=$$?; \
+	  KILTER_TEST_DATABASE_URL="$$url" $(BIN)/python -m pytest -q -p no:cacheprovider tests/http; rc=$$?; \
 	  $(BIN)/python tests/pg_server.py stop; exit $$rc; \
 	else echo "postgresql missing: skipped the PostgreSQL run of tests/http" >&2; fi
 

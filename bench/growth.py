@@ -189,7 +189,7 @@ def main() -> None:
     args = ap.parse_args()
     t_start = time.perf_counter()
     m = manifest()
-    tmp = Path(tempfile.mkdtemp(prefix="echowatch-growth-"))
+    tmp = Path(tempfile.mkdtemp(prefix="kilter-growth-"))
     try:
         now_s = int(time.time())
         step = int(m.sample_period_s) * m.stride

@@ -1,4 +1,4 @@
-"""Ingest throughput: readings/s through HTTP on loopback into a real `echowatch serve`
+"""Ingest throughput: readings/s through HTTP on loopback into a real `kilter serve`
 process (readings stored, windows formed from stored readings, scored, stored, alert rule
 run), with several concurrent clients posting realistic batches, beside the in-process
 floor measured in the same run on the same data: the same windows scored straight
@@ -45,7 +45,7 @@ sys.path.insert(0, str(ROOT))
 from service import grid as G  # noqa: E402
 from service.db.keys import create_key  # noqa: E402
 from service.db.session import Database, json_text  # noqa: E402
-from service.demo import echowatch_argv, free_port, stop, wait_ready  # noqa: E402
+from service.demo import kilter_argv, free_port, stop, wait_ready  # noqa: E402
 from service.manifest import load_manifest  # noqa: E402
 from service.scoring import OnnxScorer  # noqa: E402
 from service.settings import BUNDLED_MODELS  # noqa: E402
@@ -124,12 +124,12 @@ def floor_run(model_dir: Path, channels: list[str], batches: list[tuple[str, lis
 
 def http_run(model_dir: Path, batches: list[tuple[str, list[dict]]], clients: int, workers: int, tmp: Path, keep_alive: bool = False) -> dict:
     db_url = f"sqlite:///{tmp / 'http.db'}"
-    env = {**os.environ, "ECHOWATCH_DATABASE_URL": db_url, "ECHOWATCH_MODEL_DIR": str(model_dir.parent.parent),
-           "ECHOWATCH_AUTH_FAIL_LIMIT": "0", "ECHOWATCH_RETENTION_DAYS": "0"}
+    env = {**os.environ, "KILTER_DATABASE_URL": db_url, "KILTER_MODEL_DIR": str(model_dir.parent.parent),
+           "KILTER_AUTH_FAIL_LIMIT": "0", "KILTER_RETENTION_DAYS": "0"}
     port = free_port()
     url = f"http://127.0.0.1:{port}"
     log = open(tmp / "serve.log", "wb")
-    proc = subprocess.Popen(echowatch_argv("serve", "--port", str(port), "--workers", str(workers), "--log-level", "warning"),
+    proc = subprocess.Popen(kilter_argv("serve", "--port", str(port), "--workers", str(workers), "--log-level", "warning"),
                                           env=env, stdout=log, stderr=log)
     try:
         wait_ready(url, proc, timeout_s=180)
@@ -214,7 +214,7 @@ def main() -> int:
     channels, batches, demo = make_batches(args.assets, args.hours, args.batch)
     floors: list[dict] = []
     https: dict[int, list[dict]] = {w: [] for w in worker_counts}
-    with tempfile.TemporaryDirectory(prefix="echowatch-bench-") as tmp_s:
+    with tempfile.TemporaryDirectory(prefix="kilter-bench-") as tmp_s:
         tmp = Path(tmp_s)
         # The machine may be shared: the paths take turns, `--rounds` times, each on a fresh
         # database, and each path's best round is compared (per-round ratios printed too).
@@ -242,7 +242,7 @@ def main() -> int:
         rate = http["readings"] / http["seconds"]
         ratio, tail = rate / floor_rate, p99 / p50
         verdicts.append((w, ratio, tail))
-        print(f"| HTTP: echowatch serve --workers {w} | {rate:,.0f} | {http['windows'] / http['seconds']:,.1f} | {ratio:.2f} | "
+        print(f"| HTTP: kilter serve --workers {w} | {rate:,.0f} | {http['windows'] / http['seconds']:,.1f} | {ratio:.2f} | "
               f"{p50 * 1000:.1f} | {p99 * 1000:.1f} | {tail:.2f} |")
         if http["windows"] != floor["windows"]:
             print(f"note: HTTP scored {http['windows']} windows, the floor {floor['windows']}")

@@ -1,4 +1,4 @@
-"""A bounded load run on loopback: `echowatch serve --workers 2` on SQLite and on
+"""A bounded load run on loopback: `kilter serve --workers 2` on SQLite and on
 PostgreSQL, several clients posting readings (scored, stored, alert rule) and reading the
 alert list for a fixed duration each. Prints throughput, p50/p99 latency and errors per
 engine, side by side in one run.
@@ -38,7 +38,7 @@ from service.db.session import Database  # noqa: E402
 from service.manifest import Manifest  # noqa: E402
 from service.settings import BUNDLED_MODELS  # noqa: E402
 
-ECHOWATCH = str(Path(sys.executable).with_name("echowatch"))
+KILTER = str(Path(sys.executable).with_name("kilter"))
 BATCH = 60  # readings per post: one hour at one a minute
 READ_EVERY = 5  # every 5th request of a client is GET /v1/alerts
 
@@ -70,11 +70,11 @@ def prepare(url: str) -> dict[str, str]:
 
 def start_server(url: str, workdir: Path) -> tuple[subprocess.Popen[bytes], str]:
     port = free_port()
-    env = {k: v for k, v in os.environ.items() if not k.startswith("ECHOWATCH_")}
-    env.update(ECHOWATCH_DATABASE_URL=url, ECHOWATCH_MODEL_DIR=str(BUNDLED_MODELS), ECHOWATCH_RETENTION_DAYS="0",
-               ECHOWATCH_AUTO_UPGRADE="false", CI="1")
+    env = {k: v for k, v in os.environ.items() if not k.startswith("KILTER_")}
+    env.update(KILTER_DATABASE_URL=url, KILTER_MODEL_DIR=str(BUNDLED_MODELS), KILTER_RETENTION_DAYS="0",
+               KILTER_AUTO_UPGRADE="false", CI="1")
     log = open(workdir / f"serve-{port}.log", "wb")
-    proc = subprocess.Popen([ECHOWATCH, "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "2", "--log-level", "warning"],
+    proc = subprocess.Popen([KILTER, "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", "2", "--log-level", "warning"],
                             env=env, cwd=workdir, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
     base = f"http://127.0.0.1:{port}"
     deadline = time.monotonic() + 120
@@ -182,7 +182,7 @@ def main() -> None:
     ap.add_argument("--sqlite-only", action="store_true")
     args = ap.parse_args()
     t_start = time.perf_counter()
-    workdir = Path(tempfile.mkdtemp(prefix="echowatch-load-"))
+    workdir = Path(tempfile.mkdtemp(prefix="kilter-load-"))
     results = [run_engine("sqlite", f"sqlite:///{workdir / 'load.db'}", args.clients, args.duration, workdir)]
 
     if not args.sqlite_only:

@@ -88,7 +88,7 @@ def main() -> int:
 
     from training import demo_data
 
-    with tempfile.TemporaryDirectory(prefix="echowatch-bench-") as tmp:
+    with tempfile.TemporaryDirectory(prefix="kilter-bench-") as tmp:
         t = time.perf_counter()
         demo = demo_data.generate(assets=args.assets, days=args.days, seed=7)
         gen_s = time.perf_counter() - t

@@ -1,6 +1,6 @@
 """The alert rule, as pure functions over a sequence of window scores.
 
-One rule for the service, `echowatch evaluate` and the threshold preview:
+One rule for the service, `kilter evaluate` and the threshold preview:
 
 * open   when k of the last n windows score >= warning (on-delay); severity is critical
          when k of the last n also score >= critical;

@@ -31,7 +31,7 @@ from service.metrics import Metrics
 from service.models_registry import ModelRegistry
 from service.settings import Settings
 
-log = logging.getLogger("echowatch")
+log = logging.getLogger("kilter")
 
 API_ROUTER_MODULES = (
     "service.api.readings",
@@ -58,7 +58,7 @@ def open_database(settings: Settings) -> Database:
             have, want = current_revision(db.engine), head_revision()
             if have != want:
                 raise StartupError(
-                    f"database schema is at {have or 'nothing'}, this code needs {want}: run `echowatch db upgrade`"
+                    f"database schema is at {have or 'nothing'}, this code needs {want}: run `kilter db upgrade`"
                 )
     except Exception:
         db.dispose()
@@ -249,7 +249,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             gc.unfreeze()
 
     app = FastAPI(
-        title="echowatch",
+        title="kilter",
         version="1",
         summary="Scores equipment sensor readings against a learned normal and raises calibrated alerts. Advisory only.",
         lifespan=lifespan,
@@ -281,4 +281,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
 def app_from_env() -> FastAPI:
     """Factory for `uvicorn --factory` / `serve --workers N`: settings from the environment."""
-    return create_app(Settings())
+    from service.settings import load_settings
+
+    return create_app(load_settings())

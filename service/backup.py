@@ -39,7 +39,7 @@ def backup_sqlite(database_url: str, target: Path, *, overwrite: bool = False) -
     if source is None:
         raise BackupError(f"{database_url} is not an SQLite file; back up PostgreSQL with pg_dump")
     if not source.is_file():
-        raise BackupError(f"database file {source} does not exist (ECHOWATCH_DATABASE_URL={database_url})")
+        raise BackupError(f"database file {source} does not exist (KILTER_DATABASE_URL={database_url})")
     target = Path(target)
     if target.resolve() == source.resolve():
         raise BackupError(f"--to {target} is the live database itself; give another file")

@@ -1,4 +1,4 @@
-"""The `echowatch` command. Each owner module registers its subcommands; training
+"""The `kilter` command. Each owner module registers its subcommands; training
 commands are imported lazily inside their handlers, so the service never loads torch."""
 
 from __future__ import annotations
@@ -14,12 +14,12 @@ COMMAND_MODULES = ("service.commands", "service.ops_commands", "training.command
 
 
 class CommandError(Exception):
-    """A user-facing failure: printed as `echowatch: <message>` with exit status 2."""
+    """A user-facing failure: printed as `kilter: <message>` with exit status 2."""
 
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="echowatch",
+        prog="kilter",
         description="Learn normal from equipment sensor logs, score live readings, raise calibrated alerts.",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
@@ -40,10 +40,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         result = args.handler(args)
     except CommandError as e:
-        print(f"echowatch: {e}", file=sys.stderr)
+        print(f"kilter: {e}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("echowatch: interrupted", file=sys.stderr)
+        print("kilter: interrupted", file=sys.stderr)
         return 130
     return int(result or 0)
 

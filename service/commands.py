@@ -1,6 +1,6 @@
 """The service's subcommands: serve, keys create, db upgrade, replay, demo.
 
-Settings come from ECHOWATCH_* environment variables or `.env` (service/settings.py).
+Settings come from KILTER_* environment variables or `.env` (service/settings.py).
 `keys create` prints the key alone on one stdout line; everything else goes to stderr.
 """
 
@@ -53,10 +53,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def _settings():  # noqa: ANN202 - pydantic-settings validation errors become CommandError
     from pydantic import ValidationError
 
-    from service.settings import Settings
+    from service.settings import load_settings
 
     try:
-        return Settings()
+        return load_settings()
     except ValidationError as e:
         raise CommandError(f"settings: {e}") from e
 
@@ -83,7 +83,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
     except ModelError as e:
         raise CommandError(f"refusing to start: {e.message}") from e
     served = ", ".join(f"{m.model_id}/{m.version}" for m in registry.models())
-    print(f"echowatch: serving {served} on http://{args.host}:{args.port} ({args.workers} worker(s))", file=sys.stderr)
+    print(f"kilter: serving {served} on http://{args.host}:{args.port} ({args.workers} worker(s))", file=sys.stderr)
     uvicorn.run(
         "service.app:app_from_env",
         factory=True,

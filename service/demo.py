@@ -1,6 +1,6 @@
-"""`echowatch demo` (what `make demo` runs): the bundled model on a fresh SQLite file,
-served by a real `echowatch serve` process on 127.0.0.1, demo keys for every role, a demo
-day with faults replayed through HTTP (the same code as `echowatch replay`), the alerts it
+"""`kilter demo` (what `make demo` runs): the bundled model on a fresh SQLite file,
+served by a real `kilter serve` process on 127.0.0.1, demo keys for every role, a demo
+day with faults replayed through HTTP (the same code as `kilter replay`), the alerts it
 opened, then serving until Ctrl-C. With DEMO_EXIT=1 it stops the server and exits 0 after
 printing.
 
@@ -34,8 +34,8 @@ class DemoError(RuntimeError):
     pass
 
 
-def echowatch_argv(*args: str) -> list[str]:
-    """Run the `echowatch` command with this interpreter (works without the console script)."""
+def kilter_argv(*args: str) -> list[str]:
+    """Run the `kilter` command with this interpreter (works without the console script)."""
     return [sys.executable, "-c", CLI, *args]
 
 
@@ -83,7 +83,7 @@ def stop(proc: subprocess.Popen[bytes], timeout_s: float = 15.0) -> None:
 
 def _create_key(env: dict[str, str], role: str) -> str:
     out = subprocess.run(
-        echowatch_argv("keys", "create", "--role", role, "--name", f"demo-{role}"),
+        kilter_argv("keys", "create", "--role", role, "--name", f"demo-{role}"),
         env=env, capture_output=True, text=True, check=False,
     )
     if out.returncode != 0:
@@ -102,18 +102,18 @@ def run_demo(*, folder: Path, port: int | None = None) -> int:
     if folder.exists():
         shutil.rmtree(folder)
     folder.mkdir(parents=True)
-    db_path = folder / "echowatch.db"
+    db_path = folder / "kilter.db"
     port = free_port(port if port is not None else 8000)
     url = f"http://127.0.0.1:{port}"
     env = {
         **os.environ,
-        "ECHOWATCH_DATABASE_URL": f"sqlite:///{db_path.resolve()}",
-        "ECHOWATCH_MODEL_DIR": str(os.environ.get("ECHOWATCH_MODEL_DIR", BUNDLED_MODELS)),
+        "KILTER_DATABASE_URL": f"sqlite:///{db_path.resolve()}",
+        "KILTER_MODEL_DIR": str(os.environ.get("KILTER_MODEL_DIR", BUNDLED_MODELS)),
     }
     log_path = folder / "serve.log"
     with open(log_path, "wb") as log:
         proc = subprocess.Popen(
-            echowatch_argv("serve", "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"),
+            kilter_argv("serve", "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"),
             env=env, stdout=log, stderr=subprocess.STDOUT,
         )
     try:

@@ -19,10 +19,10 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.scoring import ScoringError
 
-log = logging.getLogger("echowatch")
+log = logging.getLogger("kilter")
 
 
-class EchowatchError(Exception):
+class KilterError(Exception):
     """Base of our errors; `status` and `code` decide the HTTP response."""
 
     status: int = 500
@@ -43,35 +43,35 @@ class EchowatchError(Exception):
         return {"error": err}
 
 
-class BadInput(EchowatchError):
+class BadInput(KilterError):
     status, code = 422, "bad_input"
 
 
-class NotFound(EchowatchError):
+class NotFound(KilterError):
     status, code = 404, "not_found"
 
 
-class Conflict(EchowatchError):
+class Conflict(KilterError):
     status, code = 409, "conflict"
 
 
-class TooLarge(EchowatchError):
+class TooLarge(KilterError):
     status, code = 413, "too_large"
 
 
-class Unauthorized(EchowatchError):
+class Unauthorized(KilterError):
     status, code = 401, "unauthorized"
 
 
-class Forbidden(EchowatchError):
+class Forbidden(KilterError):
     status, code = 403, "forbidden"
 
 
-class Unavailable(EchowatchError):
+class Unavailable(KilterError):
     status, code = 503, "unavailable"
 
 
-class ModelError(EchowatchError):
+class ModelError(KilterError):
     """A model folder failed validation (load, names/shapes, sha256, self test)."""
 
     status, code = 409, "model_invalid"
@@ -112,8 +112,8 @@ def error_response(status: int, code: str, message: str, field: str | None = Non
 
 
 def install_error_handlers(app: FastAPI) -> None:
-    @app.exception_handler(EchowatchError)
-    async def _ours(_req: Request, exc: EchowatchError) -> JSONResponse:
+    @app.exception_handler(KilterError)
+    async def _ours(_req: Request, exc: KilterError) -> JSONResponse:
         headers = {"WWW-Authenticate": "Bearer"} if exc.status == 401 else None
         return JSONResponse(exc.body(), status_code=exc.status, headers=headers)
 

@@ -38,7 +38,7 @@ Decisions (the numbers are settings, service/settings.py):
   write transaction locks the asset row (FOR UPDATE on PostgreSQL; SQLite's BEGIN
   IMMEDIATE) and uses the plan only if the asset's `ingest_seq`, moved by every batch that
   stores readings, is what the plan saw; otherwise it plans again inside the transaction
-  (counted in echowatch_ingest_replans_total). The write then reads the rule's state
+  (counted in kilter_ingest_replans_total). The write then reads the rule's state
   (recent scores, active alert, shelving, threshold) as it is under the lock.
 * Concurrency: one asset's batches write one at a time (the row lock above). The UNIQUE
   keys on readings, window scores and the active alert turn any remaining race into an
@@ -83,7 +83,7 @@ from service.metrics import Metrics
 from service.models_registry import LoadedModel, ModelRegistry
 from service.settings import Settings
 
-log = logging.getLogger("echowatch")
+log = logging.getLogger("kilter")
 
 TOP_CHANNELS = 3
 MAX_ATTEMPTS = 4  # a concurrent writer of the same rows makes the transaction retry
@@ -292,7 +292,7 @@ def resolve_model(registry: ModelRegistry, asset: Asset | None, asset_id: str) -
         served = sorted(m.model_id for m in registry.models())
         raise BadInput(
             f"no model is bound to new asset {asset_id!r} and several are served ({', '.join(served)}): "
-            "set ECHOWATCH_DEFAULT_MODEL or ECHOWATCH_ASSET_MODELS",
+            "set KILTER_DEFAULT_MODEL or KILTER_ASSET_MODELS",
             field="path.asset_id",
         )
     return registry.get(model_id)

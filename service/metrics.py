@@ -94,18 +94,18 @@ class Metrics:
     """The service's figures."""
 
     def __init__(self) -> None:
-        self.requests = Counter("echowatch_http_requests_total", "HTTP requests by method, route template and status.")
-        self.request_seconds = Histogram("echowatch_http_request_seconds", "HTTP request latency in seconds.")
-        self.scoring_seconds = Histogram("echowatch_scoring_seconds", "ONNX Runtime scoring time per request batch in seconds.")
-        self.windows_scored = Counter("echowatch_windows_scored_total", "Windows scored and stored.")
-        self.windows_skipped = Counter("echowatch_windows_skipped_total", "Windows not scored because they span a long gap.")
-        self.readings_accepted = Counter("echowatch_readings_accepted_total", "Readings stored.")
-        self.readings_duplicate = Counter("echowatch_readings_duplicate_total", "Readings already stored with the same values.")
-        self.alerts_opened = Counter("echowatch_alerts_opened_total", "Alerts opened, by severity.")
+        self.requests = Counter("kilter_http_requests_total", "HTTP requests by method, route template and status.")
+        self.request_seconds = Histogram("kilter_http_request_seconds", "HTTP request latency in seconds.")
+        self.scoring_seconds = Histogram("kilter_scoring_seconds", "ONNX Runtime scoring time per request batch in seconds.")
+        self.windows_scored = Counter("kilter_windows_scored_total", "Windows scored and stored.")
+        self.windows_skipped = Counter("kilter_windows_skipped_total", "Windows not scored because they span a long gap.")
+        self.readings_accepted = Counter("kilter_readings_accepted_total", "Readings stored.")
+        self.readings_duplicate = Counter("kilter_readings_duplicate_total", "Readings already stored with the same values.")
+        self.alerts_opened = Counter("kilter_alerts_opened_total", "Alerts opened, by severity.")
         self.ingest_replans = Counter(
-            "echowatch_ingest_replans_total", "Ingest plans made again under the write lock (another writer changed the asset meanwhile)."
+            "kilter_ingest_replans_total", "Ingest plans made again under the write lock (another writer changed the asset meanwhile)."
         )
-        self.pruned_rows = Counter("echowatch_retention_pruned_rows_total", "Rows removed by retention, by table.")
+        self.pruned_rows = Counter("kilter_retention_pruned_rows_total", "Rows removed by retention, by table.")
 
     def render(self) -> str:
         parts: list[str] = []

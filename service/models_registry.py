@@ -82,7 +82,7 @@ def discover(model_dir: Path) -> dict[str, list[Path]]:
     """model id -> its version folders (those holding a manifest), oldest first."""
     model_dir = Path(model_dir)
     if not model_dir.is_dir():
-        raise ModelError(f"{model_dir}: model directory does not exist (set ECHOWATCH_MODEL_DIR)")
+        raise ModelError(f"{model_dir}: model directory does not exist (set KILTER_MODEL_DIR)")
     found: dict[str, list[Path]] = {}
     for model_path in sorted(p for p in model_dir.iterdir() if p.is_dir() and not p.name.startswith(".")):
         versions = [v for v in model_path.iterdir() if v.is_dir() and (v / MANIFEST_FILE).is_file()]

@@ -1,7 +1,7 @@
 """Operations subcommands: `db backup --to FILE` (a consistent copy of a live SQLite file).
 
 Attaches to the `db` command that service.commands registers (or creates it), so
-`echowatch db upgrade` and `echowatch db backup` sit side by side.
+`kilter db upgrade` and `kilter db backup` sit side by side.
 """
 
 from __future__ import annotations
@@ -35,10 +35,10 @@ def cmd_db_backup(args: argparse.Namespace) -> int:
     from pydantic import ValidationError
 
     from service.backup import BackupError, backup_sqlite
-    from service.settings import Settings
+    from service.settings import load_settings
 
     try:
-        settings = Settings()
+        settings = load_settings()
     except ValidationError as e:
         raise CommandError(f"settings: {e}") from e
     try:

@@ -13,7 +13,7 @@ chunks make each LSTM's per-run gate buffer larger (steps x chunk x 4 x hidden f
 per direction, ~1 MB at 16, ~4 MB at 64); smaller ones pay the per-run overhead more
 often. 8, 16 and 32 trade places from run to run under load (bench/scoring.py prints the
 chunk table every run), so a model of another shape can be given its own `chunk_size`
-(settings: ECHOWATCH_ONNX_CHUNK).
+(settings: KILTER_ONNX_CHUNK).
 Session options were measured too and left at ONNX Runtime's defaults (full graph
 optimisation, memory pattern, arena): basic optimisation, no memory pattern and
 denormals-as-zero were all within the run-to-run noise.

@@ -1,4 +1,4 @@
-"""Service settings: one `Settings` object, read from ECHOWATCH_* environment variables or a
+"""Service settings: one `Settings` object, read from KILTER_* environment variables or a
 `.env` file (pydantic-settings). `create_app(settings)` takes it explicitly, so tests build
 their own and never edit the environment.
 """
@@ -8,7 +8,9 @@ from __future__ import annotations
 from pathlib import Path
 
 from pydantic import Field, SecretStr, field_validator
-from pydantic_settings import BaseSettings, SettingsConfigDict
+from pydantic_settings import BaseSettings, PydanticBaseSettingsSource, SettingsConfigDict
+
+from service.legacy_env import LegacyPrefixSource, warn_if_old_default_database
 
 from service.scoring import DEFAULT_CHUNK
 
@@ -17,10 +19,10 @@ BUNDLED_MODELS = REPO_ROOT / "models"
 
 
 class Settings(BaseSettings):
-    model_config = SettingsConfigDict(env_prefix="ECHOWATCH_", env_file=".env", extra="ignore")
+    model_config = SettingsConfigDict(env_prefix="KILTER_", env_file=".env", extra="ignore")
 
     # Storage. Any SQLAlchemy URL; PostgreSQL works through the URL alone.
-    database_url: str = "sqlite:///var/echowatch.db"
+    database_url: str = "sqlite:///var/kilter.db"
     db_busy_timeout_ms: int = Field(default=5000, ge=0, description="SQLite busy timeout")
     auto_upgrade: bool = Field(default=True, description="run Alembic upgrade to head on start")
 
@@ -53,9 +55,28 @@ class Settings(BaseSettings):
     retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
     retention_interval_s: float = Field(default=3600.0, gt=0)
 
+    @classmethod
+    def settings_customise_sources(
+        cls,
+        settings_cls: type[BaseSettings],
+        init_settings: PydanticBaseSettingsSource,
+        env_settings: PydanticBaseSettingsSource,
+        dotenv_settings: PydanticBaseSettingsSource,
+        file_secret_settings: PydanticBaseSettingsSource,
+    ) -> tuple[PydanticBaseSettingsSource, ...]:
+        # KILTER_* first; the former prefix only where the new one is unset (service/legacy_env.py).
+        return (init_settings, env_settings, LegacyPrefixSource(settings_cls), dotenv_settings, file_secret_settings)
+
     @field_validator("database_url")
     @classmethod
     def _url(cls, v: str) -> str:
         if "://" not in v:
-            raise ValueError("give an SQLAlchemy URL such as sqlite:///var/echowatch.db or postgresql+psycopg://...")
+            raise ValueError("give an SQLAlchemy URL such as sqlite:///var/kilter.db or postgresql+psycopg://...")
         return v
+
+
+def load_settings() -> Settings:
+    """Settings from the environment and `.env`, with the former name's warnings (service/legacy_env.py)."""
+    settings = Settings()
+    warn_if_old_default_database(settings.database_url)
+    return settings

@@ -21,10 +21,10 @@ import sys
 import time
 from pathlib import Path
 
-PORT = int(os.environ.get("ECHOWATCH_TEST_PG_PORT", "55432"))
-DATA = Path(os.environ.get("ECHOWATCH_TEST_PG_DIR", f"/tmp/echowatch-pgtest-{PORT}"))
-DBNAME = "echowatch_test"
-USER = "echowatch"
+PORT = int(os.environ.get("KILTER_TEST_PG_PORT", "55432"))
+DATA = Path(os.environ.get("KILTER_TEST_PG_DIR", f"/tmp/kilter-pgtest-{PORT}"))
+DBNAME = "kilter_test"
+USER = "kilter"
 
 
 def pg_bin(name: str) -> str | None:

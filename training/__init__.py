@@ -1,1 +1,1 @@
-"""echowatch trainer half: logs in, a calibrated bidirectional LSTM reconstructor out (ONNX)."""
+"""kilter trainer half: logs in, a calibrated bidirectional LSTM reconstructor out (ONNX)."""

@@ -1,7 +1,7 @@
 """Build the bundled demo model: `python -m training.bundle --out models` (= `make model`).
 
 Generates the default demo scenario (6 pumps, 42 days, seed 7), writes it as CSV to a
-temporary folder, and trains on it through the same path as `echowatch train` with the
+temporary folder, and trains on it through the same path as `kilter train` with the
 labelled events excluded, into <out>/booster-pumps/1/. Reproducible: fixed seed, fixed
 version "1", created_at is the end of the demo data, and the fit is deterministic.
 """
@@ -43,7 +43,7 @@ def build(out: Path, config: TrainConfig | None = None, progress: bool | None = 
     config = config or bundle_config()
     demo = demo_data.generate()
     created = datetime.fromtimestamp(demo.start_s + demo.days * 86400.0, timezone.utc)
-    with tempfile.TemporaryDirectory(prefix="echowatch-bundle-") as tmp:
+    with tempfile.TemporaryDirectory(prefix="kilter-bundle-") as tmp:
         readings, events = demo_data.write(demo, tmp)
         outcome = train_file(readings, out, config, exclude=events, progress=progress, overwrite=True, created_at=created)
     return outcome.folder

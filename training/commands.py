@@ -1,7 +1,7 @@
-"""`echowatch train`: logs in, a calibrated, checked ONNX model folder out.
+"""`kilter train`: logs in, a calibrated, checked ONNX model folder out.
 
 Only argparse at module scope: torch and the trainer are imported inside the handler, so
-`echowatch` without the train extra (the service image) still starts.
+`kilter` without the train extra (the service image) still starts.
 """
 
 from __future__ import annotations

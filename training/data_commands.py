@@ -1,4 +1,4 @@
-"""`echowatch demo-data`: write the invented demo scenario (readings.csv, events.csv)."""
+"""`kilter demo-data`: write the invented demo scenario (readings.csv, events.csv)."""
 
 from __future__ import annotations
 

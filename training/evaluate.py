@@ -49,7 +49,7 @@ from training.metrics import (
 )
 
 CHUNK_WINDOWS = 1024  # windows cut and scored at a time, so memory stays bounded
-MODEL_ROW = "echowatch"
+MODEL_ROW = "kilter"
 
 
 class EvaluationError(ValueError):
@@ -226,7 +226,7 @@ def training_data_settings(model_dir: Path) -> dict:
 def baseline_splits(data: EvalInputs) -> BaselineSplits:
     """The model's training cut rebuilt from the same logs: readings within the manifest's
     training stretch, prepared by training.dataset.prepare with the model's grid, window,
-    strides, fractions and the labelled events excluded (as `echowatch train --exclude`)."""
+    strides, fractions and the labelled events excluded (as `kilter train --exclude`)."""
     from training.config import DataConfig
     from training.dataset import prepare_with
     from training.logs import AssetLog, LogSet

@@ -1,4 +1,4 @@
-"""`echowatch evaluate`: replay labelled history through the service's scoring and alert rule,
+"""`kilter evaluate`: replay labelled history through the service's scoring and alert rule,
 beside simple baselines. Heavy imports happen inside the handler."""
 
 from __future__ import annotations

@@ -1,7 +1,7 @@
 """Detection-quality figures: event-wise precision/recall, detection delay, false alarms per
 asset-week, and window-level ROC-AUC, PR-AUC and F1 (numpy only, pure functions).
 
-Definitions (stated once, here; `echowatch evaluate` prints them beside the table):
+Definitions (stated once, here; `kilter evaluate` prints them beside the table):
 
 * A window ending at time e covers grid points e-(W-1)*period .. e. It is *labelled
   abnormal* when that span intersects a labelled fault [start, end]. Windows that touch an
@@ -37,7 +37,7 @@ import numpy as np
 WEEK_S = 7 * 86400.0
 DEFAULT_IGNORE_KINDS = frozenset({"maintenance"})
 
-# The keys of one row of `echowatch evaluate --json` (issue 5), in table order.
+# The keys of one row of `kilter evaluate --json` (issue 5), in table order.
 FIGURE_KEYS = (
     "event_precision",
     "event_recall",

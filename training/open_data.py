@@ -173,7 +173,7 @@ HELD_BACK_PER_CLASS = 2  # training cases per normal class kept for early stoppi
 
 @dataclass(frozen=True)
 class MotionRun:
-    """Scores of the TEST split's windows by echowatch's model and each baseline."""
+    """Scores of the TEST split's windows by kilter's model and each baseline."""
 
     labels: np.ndarray  # (M,) class of each test window
     scores: dict[str, np.ndarray]  # detector name -> (M,) scores
@@ -185,7 +185,7 @@ class MotionRun:
 
 
 def basicmotions_run(work_dir: Path, epochs: int = 20, seed: int = 7, baselines: tuple[str, ...] = ("pca",)) -> MotionRun:
-    """Train echowatch's model (hidden 16, latent 8, one layer each side, CPU, one thread) on Standing/Walking
+    """Train kilter's model (hidden 16, latent 8, one layer each side, CPU, one thread) on Standing/Walking
     TRAIN windows, export it to ONNX and score the TEST windows with ONNX Runtime; fit the
     named baselines on the same windows, scaled by the same scaler."""
     import onnxruntime as ort
@@ -215,7 +215,7 @@ def basicmotions_run(work_dir: Path, epochs: int = 20, seed: int = 7, baselines:
     onnx_path = Path(work_dir) / "basicmotions.onnx"
     export_onnx(model, onnx_path)
     session = ort.InferenceSession(str(onnx_path), providers=["CPUExecutionProvider"])
-    scores = {"echowatch": np.asarray(session.run(["score"], {"readings": w_test})[0], dtype=np.float64)}
+    scores = {"kilter": np.asarray(session.run(["score"], {"readings": w_test})[0], dtype=np.float64)}
 
     scaling = Scaling(center, scale)
     for b in fit_baselines(ArrayWindows(w_fit), scaling, baselines, seed=seed):
@@ -224,10 +224,10 @@ def basicmotions_run(work_dir: Path, epochs: int = 20, seed: int = 7, baselines:
 
 
 def main() -> int:
-    """`python -m training.open_data`: print the BasicMotions table (echowatch and all baselines)."""
+    """`python -m training.open_data`: print the BasicMotions table (kilter and all baselines)."""
     import tempfile
 
-    with tempfile.TemporaryDirectory(prefix="echowatch-basicmotions-") as tmp:
+    with tempfile.TemporaryDirectory(prefix="kilter-basicmotions-") as tmp:
         run = basicmotions_run(Path(tmp), baselines=("robust_z", "pca", "iforest"))
     print(
         f"BasicMotions (Bagnall et al. 2018): trained on {run.fit_windows} Standing/Walking windows of {WINDOW} steps "

@@ -309,7 +309,7 @@ def train_file(
     overwrite: bool = False,
     created_at: datetime | None = None,
 ) -> TrainOutcome:
-    """`echowatch train`: read the log file (and events to exclude), then train_logs."""
+    """`kilter train`: read the log file (and events to exclude), then train_logs."""
     torch.set_num_threads(max(int(config.fit.threads), 1))
     logs = read_logs(data, tz=tz, units=units)
     events = read_events(exclude, tz=tz) if exclude is not None else []

@@ -36,7 +36,7 @@ AlertId = Annotated[int, Path(ge=1, description="alert id")]
 HEALTH_DEFAULT = timedelta(days=7)
 CAUTION = (
     "Advisory figures in the spirit of ISA-18.2 / IEC 62682 and EEMUA 191 benchmarks as summarised "
-    "in the trade press (common practice); echowatch is not a safety system."
+    "in the trade press (common practice); kilter is not a safety system."
 )
 
 

@@ -106,7 +106,7 @@ async def get_caller(request: Request) -> Caller:
         return cached
     key = bearer_key(request)
     if key is None:
-        raise Unauthorized("send an API key: 'Authorization: Bearer <key>' (create one with `echowatch keys create`)")
+        raise Unauthorized("send an API key: 'Authorization: Bearer <key>' (create one with `kilter keys create`)")
     # Looked up on every request (no cache), so a revoked key is refused from the next request on.
     with request.app.state.db.engine.connect() as conn:
         row = find_key_fields(conn, key=key)

@@ -1,4 +1,4 @@
-"""Alembic migrations driven from the settings' URL (`echowatch db upgrade`, and `serve`
+"""Alembic migrations driven from the settings' URL (`kilter db upgrade`, and `serve`
 on start)."""
 
 from __future__ import annotations

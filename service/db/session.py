@@ -24,7 +24,7 @@ except ImportError:  # not on Windows: writers there meet SQLite's busy timeout
     fcntl = None  # type: ignore[assignment]
 from sqlalchemy.orm import Session, sessionmaker
 
-_BEGIN_OPTION = "echowatch_begin"
+_BEGIN_OPTION = "kilter_begin"
 
 
 def sqlite_file(url: str) -> Path | None:

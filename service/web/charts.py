@@ -1,7 +1,7 @@
 """Server-rendered SVG charts for the dashboard: plain data in, escaped markup out.
 
 Every chart is an inline <svg> with a viewBox (it scales with the page), a <title> and
-<desc> for screen readers, and CSS classes for colour (service/web/static/echowatch.css),
+<desc> for screen readers, and CSS classes for colour (service/web/static/kilter.css),
 so the palette lives in one place. Times are epoch milliseconds, drawn in UTC.
 
 Charts:

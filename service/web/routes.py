@@ -31,7 +31,7 @@ from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
 from service.db.keys import find_key
-from service.errors import Conflict, EchowatchError
+from service.errors import Conflict, KilterError
 from service.models_registry import LoadedModel
 from service.web import pages, views
 from service.web.access import WebUser, codec_for, current_user, same_origin
@@ -171,7 +171,7 @@ def _after_post(path: str, done: str, anchor: str = "") -> RedirectResponse:
     return RedirectResponse(f"{path}{sep}done={done}{anchor}", status_code=303)
 
 
-def _failed(request: Request, user: WebUser | None, e: EchowatchError, back: str) -> HTMLResponse:
+def _failed(request: Request, user: WebUser | None, e: KilterError, back: str) -> HTMLResponse:
     heading = {404: "Not found", 409: "Already changed", 422: "Cannot use that input"}.get(e.status, "Could not do that")
     return _error_page(request, user, e.status, heading, e.message, back)
 
@@ -298,7 +298,7 @@ def alerts_page(
             )
         except views.FormValueError as e:
             flashes.append(("error", str(e)))
-        except EchowatchError as e:
+        except KilterError as e:
             flashes.append(("error", e.message))
         scope = user.caller.assets
         if asset:  # the tallies follow the asset filter
@@ -336,7 +336,7 @@ def alert_page(request: Request, alert_id: int) -> Response:
     with _read_session(request) as db:
         try:
             context = pages.alert_detail(db, request.app.state.registry, alert_id=alert_id, user=user)
-        except EchowatchError as e:
+        except KilterError as e:
             return _failed(request, user, e, "/alerts")
     return _render(request, "alert_detail.html", context, user=user)
 
@@ -353,7 +353,7 @@ def _alert_action(
             # The same asset limits as reading the alert.
             alert_q.get_alert(db, alert_id=alert_id, allowed_assets=user.caller.assets)
             act(db, user)
-    except EchowatchError as e:
+    except KilterError as e:
         return _failed(request, user, e, back)
     return _after_post(back, done)
 
@@ -469,7 +469,7 @@ def thresholds_page(
     with _read_session(request) as db:
         try:
             context = pages.threshold_page(db, request.app.state.registry, request.app.state.settings, asset_id=asset_id, inputs=inputs)
-        except EchowatchError as e:
+        except KilterError as e:
             return _failed(request, user, e, "/assets")
     return _render(request, "thresholds.html", context, user=user)
 
@@ -485,7 +485,7 @@ def _asset_action(request: Request, asset_id: str, csrf: str | None, done: str, 
             act(db, user, asset)
     except views.FormValueError as e:
         return _error_page(request, user, 422, "Cannot use that input", str(e), back)
-    except EchowatchError as e:
+    except KilterError as e:
         return _failed(request, user, e, back)
     except ValidationError as e:
         return _error_page(request, user, 422, "Cannot use that input", str(e.errors()[0].get("msg", e)), back)

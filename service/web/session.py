@@ -24,10 +24,10 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-log = logging.getLogger("echowatch.web")
+log = logging.getLogger("kilter.web")
 
-SESSION_COOKIE = "echowatch_session"
-SIGNIN_COOKIE = "echowatch_signin"
+SESSION_COOKIE = "kilter_session"
+SIGNIN_COOKIE = "kilter_signin"
 CSRF_FIELD = "csrf_token"
 DEFAULT_MAX_AGE_S = 8 * 3600  # one shift
 SIGNIN_MAX_AGE_S = 15 * 60
@@ -131,7 +131,7 @@ def resolve_secret(configured: str | None, folder: Path | None) -> bytes:
     if configured:
         secret = configured.encode("utf-8")
         if len(secret) < MIN_SECRET_BYTES:
-            raise ValueError(f"ECHOWATCH_SESSION_SECRET must be at least {MIN_SECRET_BYTES} characters, got {len(secret)}")
+            raise ValueError(f"KILTER_SESSION_SECRET must be at least {MIN_SECRET_BYTES} characters, got {len(secret)}")
         return secret
     if folder is None:
         log.warning("no session_secret set and no SQLite folder to keep one in: dashboard sessions last until this process restarts")

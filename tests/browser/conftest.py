@@ -1,7 +1,7 @@
-"""Browser tests: Playwright driving Debian's Chromium against a real `echowatch serve`.
+"""Browser tests: Playwright driving Debian's Chromium against a real `kilter serve`.
 
 One server process per test session, on a free 127.0.0.1 port, with an SQLite file in a
-temporary folder and the bundled model. Keys come from `echowatch keys create`; a demo
+temporary folder and the bundled model. Keys come from `kilter keys create`; a demo
 day (training.demo_data, our own invented pump fleet) is replayed over HTTP with the
 service's own replay code so the rule opens alerts. Each test gets a fresh browser
 context (no shared cookies or storage) and writes screenshots to
@@ -27,9 +27,9 @@ from browser_support import BUNDLED, CHROMIUM, CHROMIUM_ARGS, DESKTOP, OUTPUT, R
 
 
 def _cli(*args: str) -> list[str]:
-    from service.demo import echowatch_argv
+    from service.demo import kilter_argv
 
-    return echowatch_argv(*args)
+    return kilter_argv(*args)
 
 
 @pytest.fixture(scope="session")
@@ -41,14 +41,14 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
     if not any(BUNDLED.glob("*/*/manifest.json")):
         pytest.fail(f"the bundled model under {BUNDLED} is missing (make model)")
     folder = tmp_path_factory.mktemp("served")
-    db_path = folder / "echowatch.db"
+    db_path = folder / "kilter.db"
     port = free_port()
     url = f"http://127.0.0.1:{port}"
     env = {
         **os.environ,
-        "ECHOWATCH_DATABASE_URL": f"sqlite:///{db_path}",
-        "ECHOWATCH_MODEL_DIR": str(BUNDLED),
-        "ECHOWATCH_RETENTION_DAYS": "0",
+        "KILTER_DATABASE_URL": f"sqlite:///{db_path}",
+        "KILTER_MODEL_DIR": str(BUNDLED),
+        "KILTER_RETENTION_DAYS": "0",
         "CI": "1",  # no progress bars
     }
     log_path = folder / "serve.log"
@@ -61,7 +61,7 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
         try:
             wait_ready(url, proc)
         except Exception as e:
-            pytest.fail(f"echowatch serve did not come up: {e}\n{log_path.read_text(errors='replace')[-3000:]}")
+            pytest.fail(f"kilter serve did not come up: {e}\n{log_path.read_text(errors='replace')[-3000:]}")
         names = {"machine": "plc-gateway", "maintenance": "mira.tech", "operator": "oskar.ops"}
         makers = {
             who: subprocess.Popen(

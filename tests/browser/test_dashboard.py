@@ -1,4 +1,4 @@
-"""The dashboard in real Chromium against a real `echowatch serve` (see conftest.py).
+"""The dashboard in real Chromium against a real `kilter serve` (see conftest.py).
 
 Scenarios from the issue: maintenance works an alert end to end; an operator previews,
 applies and rolls back a threshold; a maintenance user cannot reach the threshold editor;
@@ -29,7 +29,7 @@ def polyline_points(page: Any, selector: str) -> int:
 
 def test_maintenance_filters_opens_acknowledges_and_closes_an_alert(page: Any, served: Served, shots: Shots) -> None:
     sign_in(page, served, "maintenance")
-    cookie = next(c for c in page.context.cookies() if c["name"] == "echowatch_session")
+    cookie = next(c for c in page.context.cookies() if c["name"] == "kilter_session")
     assert cookie["httpOnly"] is True and cookie["sameSite"] == "Strict"
 
     alert_id, asset, severity = served.rows(
@@ -241,7 +241,7 @@ def test_sign_in_refuses_machine_and_unknown_keys(page: Any, served: Served, sho
         page.get_by_label("API key").fill(key)
         page.get_by_role("button", name="Sign in").click()
         page.get_by_text(message).wait_for()
-        assert not any(c["name"] == "echowatch_session" for c in page.context.cookies())
+        assert not any(c["name"] == "kilter_session" for c in page.context.cookies())
     shots.both(page, "signin-refused")
 
     # Keyboard only: the key field has the focus, Enter signs in, Tab reaches the skip link first.

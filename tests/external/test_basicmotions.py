@@ -103,11 +103,11 @@ def test_separation_auc_counts_running_and_badminton_as_abnormal() -> None:
 
 
 @needs_files
-def test_echowatch_separates_vigorous_motion_at_least_as_well_as_pca(tmp_path: Path) -> None:
+def test_kilter_separates_vigorous_motion_at_least_as_well_as_pca(tmp_path: Path) -> None:
     """Issue 5's open-data check, in one run on the same windows.
 
     Source of the data: Bagnall et al. 2018 (UEA archive, arXiv:1811.00075), BasicMotions.
-    Train echowatch's model (tiny: hidden 16, latent 8, <= 20 epochs, seed fixed, CPU) on
+    Train kilter's model (tiny: hidden 16, latent 8, <= 20 epochs, seed fixed, CPU) on
     20-step windows of the TRAIN split's Standing and Walking cases only; the TEST split's
     Running and Badminton windows must score higher than its Standing and Walking windows
     with ROC-AUC >= 0.95 (reference: sklearn.metrics.roc_auc_score), and the model must do
@@ -122,13 +122,13 @@ def test_echowatch_separates_vigorous_motion_at_least_as_well_as_pca(tmp_path: P
 
     run = basicmotions_run(tmp_path, epochs=20, seed=7, baselines=("pca",))
     abnormal = np.isin(run.labels, ABNORMAL_CLASSES)
-    model_scores, pca_scores = run.scores["echowatch"], run.scores["pca"]
+    model_scores, pca_scores = run.scores["kilter"], run.scores["pca"]
     assert run.fit_windows == 16 * 41  # 16 normal cases x 41 windows of 20 steps every 2
     assert len(run.labels) == 40 * 17 and abnormal.sum() == 20 * 17
 
     # Reference: sklearn.metrics.roc_auc_score, the issue's threshold of 0.95.
     model_auc = roc_auc_score(abnormal, model_scores)
     pca_auc = roc_auc_score(abnormal, pca_scores)
-    assert model_auc >= 0.95, f"echowatch ROC-AUC {model_auc:.4f}"
-    assert model_auc >= pca_auc, f"echowatch ROC-AUC {model_auc:.4f} below PCA's {pca_auc:.4f}"
-    assert run.auc()["echowatch"] == pytest.approx(model_auc)
+    assert model_auc >= 0.95, f"kilter ROC-AUC {model_auc:.4f}"
+    assert model_auc >= pca_auc, f"kilter ROC-AUC {model_auc:.4f} below PCA's {pca_auc:.4f}"
+    assert run.auc()["kilter"] == pytest.approx(model_auc)

@@ -58,10 +58,10 @@ class Service:
 
 @contextmanager
 def running(tmp_path: Path, model_dir: Path | None = None) -> Iterator[Service]:
-    """The app on an SQLite file in `tmp_path` (or, when ECHOWATCH_TEST_DATABASE_URL is set as
+    """The app on an SQLite file in `tmp_path` (or, when KILTER_TEST_DATABASE_URL is set as
     for the rest of tests/http, a fresh PostgreSQL schema), with one key per role."""
-    test_db = os.environ.get("ECHOWATCH_TEST_DATABASE_URL")
-    url = pg_server.schema_url(test_db, str(tmp_path)) if test_db else f"sqlite:///{tmp_path / 'echowatch.db'}"
+    test_db = os.environ.get("KILTER_TEST_DATABASE_URL")
+    url = pg_server.schema_url(test_db, str(tmp_path)) if test_db else f"sqlite:///{tmp_path / 'kilter.db'}"
     settings = Settings(
         _env_file=None,
         database_url=url,

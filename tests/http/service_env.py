@@ -21,7 +21,7 @@ import pg_server  # noqa: E402
 
 # Set (e.g. by `make test`) to run this suite a second time on a real PostgreSQL server:
 # each test gets a fresh schema of that database instead of an SQLite file.
-TEST_DATABASE_URL = os.environ.get("ECHOWATCH_TEST_DATABASE_URL")
+TEST_DATABASE_URL = os.environ.get("KILTER_TEST_DATABASE_URL")
 
 from service.app import create_app  # noqa: E402
 from service.db.keys import create_key  # noqa: E402
@@ -86,7 +86,7 @@ class Env:
 def make_settings(tmp_path: Path, model_dir: Path, **overrides: Any) -> Settings:
     return Settings(
         _env_file=None,
-        database_url=pg_server.schema_url(TEST_DATABASE_URL, str(tmp_path)) if TEST_DATABASE_URL else f"sqlite:///{tmp_path / 'echowatch.db'}",
+        database_url=pg_server.schema_url(TEST_DATABASE_URL, str(tmp_path)) if TEST_DATABASE_URL else f"sqlite:///{tmp_path / 'kilter.db'}",
         model_dir=model_dir,
         **{"auth_fail_limit": 0, "retention_days": 0, **overrides},  # the failed-auth limit has its own tests (tests/reliability)
     )
@@ -97,7 +97,7 @@ def start_env(tmp_path: Path, model_dir: Path, **overrides: Any) -> Iterator[Env
     app = create_app(settings)
     try:
         with TestClient(app) as client:
-            env = Env(settings, client, {}, tmp_path / "echowatch.db")
+            env = Env(settings, client, {}, tmp_path / "kilter.db")
             env.keys = {role: env.add_key(role, f"test-{role}") for role in ROLES}
             yield env
     finally:

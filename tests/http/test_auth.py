@@ -101,5 +101,5 @@ def test_only_hashes_are_stored(env) -> None:
         assert hash_key(key) in stored
     if not env.db_path.exists():
         return  # the suite's PostgreSQL run: no file to search
-    raw = env.db_path.read_bytes() + b"".join(p.read_bytes() for p in env.db_path.parent.glob("echowatch.db-*"))
+    raw = env.db_path.read_bytes() + b"".join(p.read_bytes() for p in env.db_path.parent.glob("kilter.db-*"))
     assert not any(key.encode() in raw for key in env.keys.values())

@@ -1,5 +1,5 @@
 """The service's commands in-process: keys create, db upgrade, serve's start-up checks,
-replay's file reading, retries and refusals. Settings reach a command through ECHOWATCH_*
+replay's file reading, retries and refusals. Settings reach a command through KILTER_*
 variables, as they do in production (monkeypatch restores them)."""
 
 from __future__ import annotations
@@ -21,8 +21,8 @@ from service.replay import AssetSeries, ReplayError, read_file, replay
 @pytest.fixture
 def cli_env(monkeypatch, tmp_path: Path, tiny_dir: Path) -> Path:
     db = tmp_path / "cli.db"
-    monkeypatch.setenv("ECHOWATCH_DATABASE_URL", f"sqlite:///{db}")
-    monkeypatch.setenv("ECHOWATCH_MODEL_DIR", str(tiny_dir))
+    monkeypatch.setenv("KILTER_DATABASE_URL", f"sqlite:///{db}")
+    monkeypatch.setenv("KILTER_MODEL_DIR", str(tiny_dir))
     monkeypatch.chdir(tmp_path)  # no stray .env is read
     return db
 
@@ -74,7 +74,7 @@ def test_serve_refuses_a_bad_model_before_listening(cli_env: Path, tmp_path: Pat
     shutil.copytree(tiny_dir, bad)
     manifest = bad / "test-pumps" / "1" / "manifest.json"
     manifest.write_text(manifest.read_text().replace('"window": 6', '"window": 7'))
-    monkeypatch.setenv("ECHOWATCH_MODEL_DIR", str(bad))
+    monkeypatch.setenv("KILTER_MODEL_DIR", str(bad))
     assert main(["serve", "--port", "1"]) == 2
     err = capsys.readouterr().err
     assert "refusing to start" in err and "sha256" not in err and "[batch, 7, 6]" in err

@@ -45,17 +45,17 @@ def test_metrics_in_prometheus_text_format(env) -> None:
     assert r.status_code == 200 and r.headers["content-type"].startswith("text/plain; version=0.0.4")
     families = {f.name: f for f in text_string_to_metric_families(r.text)}
     s = {(x.name, tuple(sorted(x.labels.items()))): x.value for f in families.values() for x in f.samples}
-    assert families["echowatch_scoring_seconds"].type == "histogram"
-    assert families["echowatch_windows_scored"].type == "counter"
-    assert s[("echowatch_windows_scored_total", ())] == 7  # ends 6, 8, ..., 18
-    assert s[("echowatch_readings_accepted_total", ())] == 20
-    assert s[("echowatch_alerts_opened_total", (("severity", "warning"),))] == 1
-    assert s[("echowatch_scoring_seconds_count", ())] == 1
-    assert s[("echowatch_scoring_seconds_bucket", (("le", "+Inf"),))] == 1
+    assert families["kilter_scoring_seconds"].type == "histogram"
+    assert families["kilter_windows_scored"].type == "counter"
+    assert s[("kilter_windows_scored_total", ())] == 7  # ends 6, 8, ..., 18
+    assert s[("kilter_readings_accepted_total", ())] == 20
+    assert s[("kilter_alerts_opened_total", (("severity", "warning"),))] == 1
+    assert s[("kilter_scoring_seconds_count", ())] == 1
+    assert s[("kilter_scoring_seconds_bucket", (("le", "+Inf"),))] == 1
     route = (("method", "POST"), ("route", "/v1/assets/{asset_id}/readings"), ("status", "200"))
-    assert s[("echowatch_http_requests_total", route)] == 1
+    assert s[("kilter_http_requests_total", route)] == 1
     # Histogram buckets are cumulative.
-    buckets = [x.value for x in families["echowatch_http_request_seconds"].samples if x.name.endswith("_bucket")]
+    buckets = [x.value for x in families["kilter_http_request_seconds"].samples if x.name.endswith("_bucket")]
     assert buckets == sorted(buckets) and buckets[-1] >= 1
 
 
@@ -73,7 +73,7 @@ def test_start_refused_on_a_bad_model_with_the_reason(tmp_path, tiny_dir) -> Non
 
 
 @pytest.mark.skipif(
-    bool(os.environ.get("ECHOWATCH_TEST_DATABASE_URL")),
+    bool(os.environ.get("KILTER_TEST_DATABASE_URL")),
     reason="needs a fresh database file; the PostgreSQL run shares one server",
 )
 def test_start_refused_when_schema_is_behind_and_auto_upgrade_is_off(tmp_path, tiny_dir) -> None:
@@ -83,6 +83,6 @@ def test_start_refused_when_schema_is_behind_and_auto_upgrade_is_off(tmp_path, t
 
     settings = make_settings(tmp_path, tiny_dir, auto_upgrade=False)
     assert settings.database_url.startswith("sqlite")
-    with pytest.raises(StartupError, match="echowatch db upgrade"):
+    with pytest.raises(StartupError, match="kilter db upgrade"):
         with TestClient(create_app(settings)):
             pass

@@ -126,7 +126,7 @@ def test_plan_made_before_the_lock_is_made_again_when_another_writer_changed_the
     # The batch's plan (seq 1), the other writer's (seq 1), the batch's again under the lock (seq 2).
     assert calls == [1, 1, 2], calls
     assert r["windows_scored"] == 1 and r["first_window_end"] == "2026-10-01T00:12:00Z"
-    assert "echowatch_ingest_replans_total 1" in env.client.get("/metrics").text
+    assert "kilter_ingest_replans_total 1" in env.client.get("/metrics").text
 
     # The stored score is the window with the late reading in it, not the forward-filled one.
     def window(step9_dev: float) -> list[list[float]]:

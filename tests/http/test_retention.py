@@ -31,7 +31,7 @@ def test_background_pruning_keeps_alerts_and_audit(tmp_path, tiny_dir) -> None:
         assert env.count("alerts") == 1 and env.count("alert_events") >= 1
         assert env.count("threshold_versions") == 2 and env.count("audit_log") >= 4
         metrics = env.client.get("/metrics").text
-        assert 'echowatch_retention_pruned_rows_total{table="readings"} 26' in metrics
+        assert 'kilter_retention_pruned_rows_total{table="readings"} 26' in metrics
     finally:
         gen.close()
 

@@ -1,5 +1,5 @@
-"""`echowatch serve` as a real process (two workers) on a free loopback port with the
-bundled model: keys from `echowatch keys create`, readings from `echowatch replay`, then
+"""`kilter serve` as a real process (two workers) on a free loopback port with the
+bundled model: keys from `kilter keys create`, readings from `kilter replay`, then
 plain HTTP, and a clean stop on SIGTERM."""
 
 from __future__ import annotations
@@ -15,7 +15,7 @@ from service_env import bundled_model_dir
 
 from service.db.keys import create_key
 from service.db.session import Database
-from service.demo import echowatch_argv, free_port, stop, wait_ready
+from service.demo import kilter_argv, free_port, stop, wait_ready
 from service.replay import read_file, replay
 
 
@@ -24,13 +24,13 @@ def served(tmp_path: Path):
     port = free_port()
     env = {
         **os.environ,
-        "ECHOWATCH_DATABASE_URL": f"sqlite:///{tmp_path / 'served.db'}",
-        "ECHOWATCH_MODEL_DIR": str(bundled_model_dir()),
+        "KILTER_DATABASE_URL": f"sqlite:///{tmp_path / 'served.db'}",
+        "KILTER_MODEL_DIR": str(bundled_model_dir()),
         "CI": "1",  # no progress bar
     }
-    env.pop("ECHOWATCH_TEST_DATABASE_URL", None)
+    env.pop("KILTER_TEST_DATABASE_URL", None)
     log = open(tmp_path / "serve.log", "wb")
-    proc = subprocess.Popen(echowatch_argv("serve", "--port", str(port), "--workers", "2", "--log-level", "warning"),
+    proc = subprocess.Popen(kilter_argv("serve", "--port", str(port), "--workers", "2", "--log-level", "warning"),
                             env=env, stdout=log, stderr=subprocess.STDOUT, cwd=tmp_path)
     url = f"http://127.0.0.1:{port}"
     try:
@@ -42,7 +42,7 @@ def served(tmp_path: Path):
 
 
 def cli(env: dict[str, str], cwd: Path, *args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run(echowatch_argv(*args), env=env, cwd=cwd, capture_output=True, text=True, timeout=120)
+    return subprocess.run(kilter_argv(*args), env=env, cwd=cwd, capture_output=True, text=True, timeout=120)
 
 
 def test_serve_process_end_to_end(served) -> None:
@@ -53,7 +53,7 @@ def test_serve_process_end_to_end(served) -> None:
     assert machine.returncode == 0, machine.stderr
     assert len(machine.stdout.splitlines()) == 1
     mkey = machine.stdout.strip()
-    db = Database(env["ECHOWATCH_DATABASE_URL"])
+    db = Database(env["KILTER_DATABASE_URL"])
     with db.transaction() as s:
         pkey, _ = create_key(s, name="ann", role="maintenance")
     db.dispose()
@@ -61,7 +61,7 @@ def test_serve_process_end_to_end(served) -> None:
     start = (time.time() // 60) * 60 - 3 * 3600
     demo = demo_data.generate(assets=2, days=3 / 24, start=start, fault_plan=[], outages=False)
     demo_data.write(demo, tmp / "data")
-    # The same code path as `echowatch replay --data FILE` (tests/http/test_commands.py runs the command).
+    # The same code path as `kilter replay --data FILE` (tests/http/test_commands.py runs the command).
     channels, series = read_file(tmp / "data" / "readings.csv")
     summary = replay(url=url, key=mkey, channels=channels, series=series, batch=45, progress=False)
     assert summary.accepted == summary.readings == demo.n_rows and summary.retries == 0

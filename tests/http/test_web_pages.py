@@ -56,7 +56,7 @@ def test_pages_need_a_session_and_posts_store_nothing(env: Env) -> None:
 def test_sign_in_sets_an_http_only_strict_cookie_and_stays_on_this_site(env: Env) -> None:
     r = sign_in(env, "maintenance", next_path="//elsewhere.example/x")
     assert r.status_code == 303 and r.headers["location"] == "/alerts"  # no open redirect
-    cookie = next(c for c in r.headers.get_list("set-cookie") if c.startswith("echowatch_session="))
+    cookie = next(c for c in r.headers.get_list("set-cookie") if c.startswith("kilter_session="))
     attrs = {a.strip().split("=")[0].lower() for a in cookie.split(";")[1:]}
     assert {"httponly", "samesite", "path", "max-age"} <= attrs
     assert "samesite=strict" in cookie.lower()
@@ -68,10 +68,10 @@ def test_sign_in_sets_an_http_only_strict_cookie_and_stays_on_this_site(env: Env
 def test_sign_in_refuses_a_form_without_its_token_and_machine_keys(env: Env) -> None:
     env.client.get("/signin")
     r = env.client.post("/signin", data={"api_key": env.keys["operator"], "signin_token": "forged"}, follow_redirects=False)
-    assert r.status_code == 403 and "echowatch_session" not in r.headers.get("set-cookie", "")
+    assert r.status_code == 403 and "kilter_session" not in r.headers.get("set-cookie", "")
     r = sign_in(env, "machine")
     assert r.status_code == 403 and "for machines posting readings" in r.text
-    assert "echowatch_session" not in r.headers.get("set-cookie", "")
+    assert "kilter_session" not in r.headers.get("set-cookie", "")
 
 
 def test_cross_site_post_is_refused_even_with_a_valid_token(env: Env) -> None:

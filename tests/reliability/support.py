@@ -1,4 +1,4 @@
-"""Helpers for the reliability tests: real `echowatch serve` processes on 127.0.0.1, keys,
+"""Helpers for the reliability tests: real `kilter serve` processes on 127.0.0.1, keys,
 invented readings for the steerable tiny model, clients that retry, and database checks
 that work on SQLite and PostgreSQL alike (through SQLAlchemy).
 
@@ -36,7 +36,7 @@ from service.db.keys import create_key  # noqa: E402
 from service.db.migrate import upgrade  # noqa: E402
 from service.db.session import Database  # noqa: E402
 
-ECHOWATCH = str(Path(sys.executable).with_name("echowatch"))
+KILTER = str(Path(sys.executable).with_name("kilter"))
 MODEL_ID = "test-pumps"
 PERIOD_S = 60.0
 WINDOW, STRIDE = 6, 2
@@ -70,12 +70,12 @@ def prepare_database(url: str, keys: dict[str, str] | None = None) -> dict[str, 
 
 
 def server_env(url: str, model_dir: Path, **extra: str) -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("ECHOWATCH_")}
+    env = {k: v for k, v in os.environ.items() if not k.startswith("KILTER_")}
     env.update(
-        ECHOWATCH_DATABASE_URL=url,
-        ECHOWATCH_MODEL_DIR=str(model_dir),
-        ECHOWATCH_RETENTION_DAYS="0",
-        ECHOWATCH_AUTO_UPGRADE="false",  # the test upgrades once; replicas never race on DDL
+        KILTER_DATABASE_URL=url,
+        KILTER_MODEL_DIR=str(model_dir),
+        KILTER_RETENTION_DAYS="0",
+        KILTER_AUTO_UPGRADE="false",  # the test upgrades once; replicas never race on DDL
         CI="1",
     )
     env.update(extra)
@@ -83,7 +83,7 @@ def server_env(url: str, model_dir: Path, **extra: str) -> dict[str, str]:
 
 
 class Server:
-    """`echowatch serve` as a real process on 127.0.0.1:`port`."""
+    """`kilter serve` as a real process on 127.0.0.1:`port`."""
 
     def __init__(self, env: dict[str, str], cwd: Path, port: int | None = None, workers: int = 1) -> None:
         self.env, self.cwd, self.workers = env, cwd, workers
@@ -98,7 +98,7 @@ class Server:
     def start(self, timeout_s: float = 90.0) -> Server:
         with open(self.log, "ab") as log:
             self.proc = subprocess.Popen(
-                [ECHOWATCH, "serve", "--host", "127.0.0.1", "--port", str(self.port), "--workers", str(self.workers), "--log-level", "warning"],
+                [KILTER, "serve", "--host", "127.0.0.1", "--port", str(self.port), "--workers", str(self.workers), "--log-level", "warning"],
                 env=self.env, cwd=self.cwd, stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
             )
         deadline = time.monotonic() + timeout_s

@@ -1,4 +1,4 @@
-"""`echowatch db backup --to FILE` copies a live SQLite database consistently (online
+"""`kilter db backup --to FILE` copies a live SQLite database consistently (online
 backup API while a writer keeps committing), and the service runs on the restored copy."""
 
 from __future__ import annotations
@@ -50,7 +50,7 @@ def test_backup_of_a_live_database_is_consistent_and_restores(tmp_path: Path) ->
         time.sleep(0.3)
         copy = tmp_path / "copy.db"
         env = support.server_env(url, model_dir)
-        done = subprocess.run([support.ECHOWATCH, "db", "backup", "--to", str(copy)], env=env, cwd=tmp_path, capture_output=True, text=True, timeout=60)
+        done = subprocess.run([support.KILTER, "db", "backup", "--to", str(copy)], env=env, cwd=tmp_path, capture_output=True, text=True, timeout=60)
         time.sleep(0.2)
         stop.set()
         writer.join(timeout=10)

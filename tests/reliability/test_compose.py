@@ -61,16 +61,16 @@ def test_compose_file_is_consistent() -> None:
         svc = services[name]
         assert svc["build"]["dockerfile"] == "docker/Dockerfile.service"
         env = svc["environment"]
-        url = urlsplit(substitute(env["ECHOWATCH_DATABASE_URL"], {"ECHOWATCH_DB_PASSWORD": "pw"}))
+        url = urlsplit(substitute(env["KILTER_DATABASE_URL"], {"KILTER_DB_PASSWORD": "pw"}))
         assert url.scheme == "postgresql+psycopg"
         assert url.hostname == "db" and url.port == 5432
         assert url.username == pg_env["POSTGRES_USER"] and url.path.lstrip("/") == pg_env["POSTGRES_DB"]
         # Both sides take the password from the same variable, which must be set.
-        assert "${ECHOWATCH_DB_PASSWORD:?" in env["ECHOWATCH_DATABASE_URL"] and "${ECHOWATCH_DB_PASSWORD:?" in pg_env["POSTGRES_PASSWORD"]
-        with pytest.raises(ValueError, match="ECHOWATCH_DB_PASSWORD"):
-            substitute(env["ECHOWATCH_DATABASE_URL"], {})
-        assert env["ECHOWATCH_AUTO_UPGRADE"] == "false"
-    assert services["migrate"]["command"][:3] == ["echowatch", "db", "upgrade"]
+        assert "${KILTER_DB_PASSWORD:?" in env["KILTER_DATABASE_URL"] and "${KILTER_DB_PASSWORD:?" in pg_env["POSTGRES_PASSWORD"]
+        with pytest.raises(ValueError, match="KILTER_DB_PASSWORD"):
+            substitute(env["KILTER_DATABASE_URL"], {})
+        assert env["KILTER_AUTO_UPGRADE"] == "false"
+    assert services["migrate"]["command"][:3] == ["kilter", "db", "upgrade"]
     assert services["migrate"]["depends_on"]["db"]["condition"] == "service_healthy"
     for name in REPLICAS:
         svc = services[name]
@@ -139,14 +139,14 @@ def test_the_service_starts_with_the_compose_settings(tmp_path: Path, compose_da
     changes replaced: the database host (-> the test server), /app (-> this checkout) and
     the bind address (-> 127.0.0.1: tests stay on loopback)."""
     services = compose()["services"]
-    env = {k: substitute(str(v), {"ECHOWATCH_DB_PASSWORD": "unused"}) for k, v in services[REPLICAS[0]]["environment"].items()}
-    env["ECHOWATCH_DATABASE_URL"] = compose_database
-    env["ECHOWATCH_MODEL_DIR"] = env["ECHOWATCH_MODEL_DIR"].replace("/app", str(support.REPO))
-    base = {k: v for k, v in os.environ.items() if not k.startswith("ECHOWATCH_")}
+    env = {k: substitute(str(v), {"KILTER_DB_PASSWORD": "unused"}) for k, v in services[REPLICAS[0]]["environment"].items()}
+    env["KILTER_DATABASE_URL"] = compose_database
+    env["KILTER_MODEL_DIR"] = env["KILTER_MODEL_DIR"].replace("/app", str(support.REPO))
+    base = {k: v for k, v in os.environ.items() if not k.startswith("KILTER_")}
     full_env = {**base, **env, "CI": "1"}
     # First the migrate service's command, as compose runs it before the replicas.
     migrate = services["migrate"]["command"]
-    done = subprocess.run([support.ECHOWATCH, *migrate[1:]], env=full_env, cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    done = subprocess.run([support.KILTER, *migrate[1:]], env=full_env, cwd=tmp_path, capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr
     cmd = list(services[REPLICAS[0]]["command"])
     port = support.free_port()
@@ -154,7 +154,7 @@ def test_the_service_starts_with_the_compose_settings(tmp_path: Path, compose_da
     cmd[cmd.index("--port") + 1] = str(port)
     log = tmp_path / "replica.log"
     with open(log, "wb") as out:
-        proc = subprocess.Popen([support.ECHOWATCH, *cmd[1:]], env=full_env, cwd=tmp_path, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)
+        proc = subprocess.Popen([support.KILTER, *cmd[1:]], env=full_env, cwd=tmp_path, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)
     try:
         server = support.Server(full_env, tmp_path, port=port)
         server.proc = proc

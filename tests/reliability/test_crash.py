@@ -1,4 +1,4 @@
-"""Crash safety: a real `echowatch serve` on 127.0.0.1 under concurrent ingest with
+"""Crash safety: a real `kilter serve` on 127.0.0.1 under concurrent ingest with
 retrying clients, killed with SIGKILL at random moments and restarted, at least 10 times.
 
 Afterwards: every reading whose POST got a 2xx is stored exactly once, the stored readings

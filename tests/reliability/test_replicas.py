@@ -1,4 +1,4 @@
-"""Several service processes on one database: two separate `echowatch serve` processes, one
+"""Several service processes on one database: two separate `kilter serve` processes, one
 of them with `--workers 2`, on one SQLite file and on one PostgreSQL database. Several
 clients post the same readings for the same asset at once, spread over both processes.
 

@@ -1,4 +1,4 @@
-"""A tiny training run on demo data through `echowatch train`, checked through the exported model.
+"""A tiny training run on demo data through `kilter train`, checked through the exported model.
 
 The run: 3 pumps x 9 days of the invented demo fleet with a fault plan of our own, events
 excluded, a small model and a few epochs. The exported model, scored through the
@@ -23,7 +23,7 @@ metrics = pytest.importorskip("sklearn.metrics")
 
 from service import grid as G  # noqa: E402
 from service.alerting import AlertRule, count_alerts  # noqa: E402
-from service.cli import main as echowatch  # noqa: E402
+from service.cli import main as kilter  # noqa: E402
 from service.manifest import load_calibration, load_manifest  # noqa: E402
 from service.scoring import OnnxScorer  # noqa: E402
 from service.thresholds import WEEK_S  # noqa: E402
@@ -59,7 +59,7 @@ def trained(tmp_path_factory: pytest.TempPathFactory) -> dict:
     out = root / "models"
     stdout = io.StringIO()
     with contextlib.redirect_stdout(stdout), contextlib.redirect_stderr(io.StringIO()):
-        code = echowatch(["train", "--data", str(readings), "--exclude", str(events), "--out", str(out), *ARGS])
+        code = kilter(["train", "--data", str(readings), "--exclude", str(events), "--out", str(out), *ARGS])
     assert code == 0
     lines = stdout.getvalue().splitlines()
     assert len(lines) == 1  # stdout carries the model folder alone
@@ -144,9 +144,9 @@ def test_warning_threshold_keeps_normal_calibration_windows_within_budget(traine
 def test_train_reports_bad_input_as_a_command_error(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     bad = tmp_path / "bad.csv"
     bad.write_text("timestamp,asset,flow_m3h\n2026-09-01T00:00:00Z,pump-01,abc\n", encoding="utf-8")
-    code = echowatch(["train", "--data", str(bad), "--out", str(tmp_path / "m"), "--epochs", "1"])
+    code = kilter(["train", "--data", str(bad), "--out", str(tmp_path / "m"), "--epochs", "1"])
     err = capsys.readouterr().err
-    assert code == 2 and "echowatch: train:" in err and "bad.csv" in err
+    assert code == 2 and "kilter: train:" in err and "bad.csv" in err
     assert not (tmp_path / "m").exists()
-    code = echowatch(["train", "--data", str(bad), "--out", str(tmp_path / "m"), "--hidden", "0"])
+    code = kilter(["train", "--data", str(bad), "--out", str(tmp_path / "m"), "--hidden", "0"])
     assert code == 2 and "--hidden must be > 0" in capsys.readouterr().err

@@ -1,4 +1,4 @@
-"""`echowatch evaluate` end to end on a tiny model trained here: the service's own scoring and
+"""`kilter evaluate` end to end on a tiny model trained here: the service's own scoring and
 alert rule, held-out windows only, baselines calibrated alike, the JSON shape of issue 5,
 the plot, and clear errors for inputs that do not fit together."""
 
@@ -80,7 +80,7 @@ def test_cli_writes_the_issue_json_shape_and_a_plot(setup: Setup, tmp_path: Path
     out = tmp_path / "eval.json"
     assert _run(setup, tmp_path, "--baselines", "--json", str(out)) == 0
     printed = capsys.readouterr()
-    assert "| echowatch" in printed.out and "| pca" in printed.out and "F1 (PA)" in printed.out
+    assert "| kilter" in printed.out and "| pca" in printed.out and "F1 (PA)" in printed.out
     data = json.loads(out.read_text())
     assert set(data) == {"model", "baselines"}
     assert set(data["model"]) == set(FIGURE_KEYS)

@@ -1,4 +1,4 @@
-// echowatch dashboard: small progressive enhancements; every page works without this file.
+// kilter dashboard: small progressive enhancements; every page works without this file.
 "use strict";
 
 // Threshold preview form: show only the inputs of the chosen way (value or budget).
