@@ -1,0 +1,23 @@
+"""notifications (reserved for notifications (issue 14); a no-op until that change fills it in)
+
+Revision ID: 0006
+Revises: 0005
+Create Date: 2026-12-03
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+revision: str = '0006'
+down_revision: str | None = '0005'
+branch_labels: str | Sequence[str] | None = None
+depends_on: str | Sequence[str] | None = None
+
+
+def upgrade() -> None:
+    pass
+
+
+def downgrade() -> None:
+    pass
