@@ -276,14 +276,13 @@ def manifest_rule(manifest: Manifest) -> dict[str, float]:
 
 
 def check_asset_access(session: Session, *, caller: Caller, asset_id: str) -> Asset | None:
-    """The asset row (None if new); Forbidden/BadInput when a limited key may not use it."""
-    asset = q.get_asset(session, asset_id=asset_id)
+    """The asset row (None if new); Forbidden when a limited key may not use the asset.
+
+    The answer is the same 403 whether or not the asset exists, and it does not list the
+    key's allowed assets: a caller learns nothing about other assets from it."""
     if not caller.may_use_asset(asset_id):
-        allowed = ", ".join(sorted(caller.assets or ()))
-        if asset is not None:
-            raise Forbidden(f"key {caller.name!r} may post only for {allowed}, not {asset_id!r}")
-        raise BadInput(f"unknown asset {asset_id!r}: key {caller.name!r} may post only for {allowed}", field="path.asset_id")
-    return asset
+        raise Forbidden(f"key {caller.name!r} may not post readings for asset {asset_id!r}", field="path.asset_id")
+    return q.get_asset(session, asset_id=asset_id)
 
 
 def resolve_model(registry: ModelRegistry, asset: Asset | None, asset_id: str) -> LoadedModel:
