@@ -29,6 +29,7 @@ from service.db.session import Database
 from service.errors import error_response, install_error_handlers
 from service.metrics import Metrics
 from service.models_registry import ModelRegistry
+from service.api.docs import install_docs
 from service.settings import Settings
 
 log = logging.getLogger("kilter")
@@ -253,6 +254,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version="1",
         summary="Scores equipment sensor readings against a learned normal and raises calibrated alerts. Advisory only.",
         lifespan=lifespan,
+        docs_url=None,  # served from the package by service/api/docs.py (no CDN)
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.metrics = metrics
@@ -265,6 +268,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             app.include_router(module.router)
             self_parsed.extend(getattr(module, "SELF_PARSED_BODIES", ()))
     _document_bodies(app, self_parsed)
+    install_docs(app)
     web = _optional_module(WEB_ROUTER_MODULE)
     if web is not None:
         app.include_router(web.router)

@@ -37,20 +37,36 @@ SELF_PARSED_BODIES = (ReadingsIn,)
 AssetId = Annotated[str, Path(pattern=ASSET_ID_PATTERN, description="1-64 characters of A-Z a-z 0-9 _ . -")]
 
 
+# The bundled demo model's channels (models/booster-pumps/1); another model has its own.
+READINGS_EXAMPLE = {
+    "readings": [
+        {"ts": "2026-10-13T09:00:00Z", "values": {"flow_m3h": 212.5, "suction_kpa": 148.0, "discharge_kpa": 418.0,
+                                                 "current_a": 61.2, "bearing_temp_c": 47.5, "vibration_mm_s": 1.9}},
+        {"ts": 1791882060, "values": {"flow_m3h": 211.9, "suction_kpa": 147.6, "discharge_kpa": None,
+                                   "current_a": 61.0, "bearing_temp_c": 47.6, "vibration_mm_s": 2.0}},
+    ]
+}
+
+
 @router.post(
     "/assets/{asset_id}/readings",
     response_model=ReadingsOut,
-    openapi_extra={"requestBody": {"required": True, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/ReadingsIn"}}}}},
+    summary="Post an asset's readings",
+    openapi_extra={"requestBody": {"required": True, "content": {"application/json": {
+        "schema": {"$ref": "#/components/schemas/ReadingsIn"}, "example": READINGS_EXAMPLE}}}},
 )
 async def post_readings(asset_id: AssetId, request: Request, caller: MachineCaller) -> Response:
-    """Store a batch of an asset's readings; score the windows it completes; run the alert rule.
+    """Send one batch of an asset's readings, oldest or newest first, up to
+    KILTER_MAX_BATCH_READINGS per post. Each reading has a time (`ts`: ISO-8601 with an
+    offset, or epoch seconds) and a value for every channel of the asset's model (`null`
+    when a channel was not measured). The example uses the bundled demo model's channels;
+    `GET /v1/models` lists each served model's.
 
-    The body (a ReadingsIn) is parsed and validated by pydantic-core straight from its bytes,
-    and the response is the model serialised once: FastAPI's own body handling (the json
-    module, then validation of the decoded objects) and response validation cost about as
-    much as the rest of the request's Python (bench/ingest.py). Errors read as FastAPI's.
-    Runs on the event loop, not in the thread pool: ingest is CPU work, so a worker thread
-    would only add hand-overs of the GIL between it and the loop."""
+    The answer counts the readings `accepted` and the `duplicates` (a reading already
+    stored with the same values; sending a batch again is safe), the windows scored by
+    this batch and the alerts it opened. Nothing is stored when the batch is refused: a
+    422 names the first bad field, a 409 a reading already stored with other values.
+    A new asset is created on its first post."""
     body = parse_body(ReadingsIn, await request.body())
     state = request.app.state
     result = ingest(

@@ -20,7 +20,8 @@ from sqlalchemy.orm import Session
 from service.db.models import ROLES, ApiKey, AuditLog
 from service.db.prepared import prepared
 
-KEY_PREFIX = "ew_"
+# New keys start "kt_"; keys made before the rename ("ew_...") keep working: a key is found by its hash alone.
+KEY_PREFIX = "kt_"
 ASSET_ID_RE = re.compile(r"^[A-Za-z0-9_.\-]{1,64}$")
 
 

@@ -74,7 +74,7 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
         for who, p in makers.items():
             out, err = p.communicate(timeout=60)
             assert p.returncode == 0, f"keys create for {who} failed: {err}"
-            assert re.fullmatch(r"ew_[A-Za-z0-9_\-]{20,}", out.strip()), f"keys create printed {out!r}, not a key alone on stdout"
+            assert re.fullmatch(r"kt_[A-Za-z0-9_\-]{20,}", out.strip()), f"keys create printed {out!r}, not a key alone on stdout"
             keys[who] = out.strip()
 
         start_s = (time.time() // 60) * 60 - 86400.0  # the day ends now: the service refuses future readings

@@ -236,7 +236,7 @@ def test_a_form_post_without_its_csrf_token_is_refused(page: Any, served: Served
 
 
 def test_sign_in_refuses_machine_and_unknown_keys(page: Any, served: Served, shots: Shots) -> None:
-    for key, message in ((served.keys["machine"], "for machines posting readings"), ("ew_not-a-key-at-all-000000000000", "unknown or revoked")):
+    for key, message in ((served.keys["machine"], "for machines posting readings"), ("kt_not-a-key-at-all-000000000000", "unknown or revoked")):
         page.goto(f"{served.url}/signin")
         page.get_by_label("API key").fill(key)
         page.get_by_role("button", name="Sign in").click()

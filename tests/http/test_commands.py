@@ -33,7 +33,7 @@ def test_keys_create_prints_the_key_alone_on_one_line(cli_env: Path, capsys) -> 
     lines = out.splitlines()
     assert len(lines) == 1 and out.endswith("\n")
     key = lines[0]
-    assert key.startswith("ew_") and len(key) >= 40
+    assert key.startswith("kt_") and len(key) >= 40
     assert "machine key" in err and key not in err
     with sqlite3.connect(cli_env) as c:
         rows = c.execute("SELECT name, role, assets, key_hash FROM api_keys").fetchall()
