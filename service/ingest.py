@@ -69,7 +69,7 @@ from sqlalchemy.orm import Session
 
 from service import grid
 from service.alerting import AlertRule, RuleState, step
-from service.api.deps import Caller
+from service.caller import Caller
 from service.db import readings as q
 from service.db import rule_alerts
 from service.db import ingest_sql as store

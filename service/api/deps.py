@@ -16,39 +16,18 @@ State-changing routes take `WriteSession` (on SQLite it holds the write lock fro
 from __future__ import annotations
 
 from collections.abc import Awaitable, Callable, Iterator
-from dataclasses import dataclass
 from typing import Annotated
 
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
+from service.caller import PEOPLE_RANK, Caller
 from service.db.keys import find_key_fields
 from service.db.session import Database
 from service.errors import Forbidden, Unauthorized
 from service.metrics import Metrics
 from service.models_registry import ModelRegistry
 from service.settings import Settings
-
-PEOPLE_RANK = {"maintenance": 1, "operator": 2, "admin": 3}
-
-
-@dataclass(frozen=True)
-class Caller:
-    key_id: int
-    name: str
-    role: str
-    assets: frozenset[str] | None  # None = every asset
-
-    def has_role(self, needed: str) -> bool:
-        if self.role == "admin":
-            return True
-        if needed == "machine" or self.role == "machine":
-            return self.role == needed
-        return PEOPLE_RANK.get(self.role, 0) >= PEOPLE_RANK[needed]
-
-    def may_use_asset(self, asset_id: str) -> bool:
-        return self.assets is None or asset_id in self.assets
-
 
 async def get_database(request: Request) -> Database:
     return request.app.state.db

@@ -27,6 +27,7 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session
 
 from service.api.deps import PEOPLE_RANK
+from service.api.errors import http_status
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
@@ -172,8 +173,9 @@ def _after_post(path: str, done: str, anchor: str = "") -> RedirectResponse:
 
 
 def _failed(request: Request, user: WebUser | None, e: KilterError, back: str) -> HTMLResponse:
-    heading = {404: "Not found", 409: "Already changed", 422: "Cannot use that input"}.get(e.status, "Could not do that")
-    return _error_page(request, user, e.status, heading, e.message, back)
+    status = http_status(e)
+    heading = {404: "Not found", 409: "Already changed", 422: "Cannot use that input"}.get(status, "Could not do that")
+    return _error_page(request, user, status, heading, e.message, back)
 
 
 # --------------------------------------------------------------------------- sign-in
