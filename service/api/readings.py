@@ -28,6 +28,7 @@ from service.api.schemas import (
 from service.db import readings as q
 from service.errors import BadInput, NotFound, TooLarge
 from service.ingest import RawReading, ingest
+from service.scoring import first_implausible, implausible_message
 
 router = APIRouter(prefix="/v1", tags=["readings"])
 # Bodies this router's routes parse themselves (schemas.parse_body); the app adds their
@@ -83,7 +84,12 @@ def score_windows(body: ScoreIn, caller: MachineCaller, registry: RegistryDep, s
                     f"body.windows[{b}][{t}]: {len(row)} values; give {len(m.channels)} in the order {', '.join(model.channels)}",
                     field=f"body.windows[{b}][{t}]",
                 )
-    arr = np.asarray(body.windows, dtype=np.float32).reshape(len(body.windows), m.window, len(m.channels))
+    arr = np.asarray(body.windows, dtype=np.float64).reshape(len(body.windows), m.window, len(m.channels))
+    bad = first_implausible(arr, m)
+    if bad is not None:
+        b, t, c = bad
+        raise BadInput(f"body.windows[{b}][{t}][{c}]: {implausible_message(float(arr[b, t, c]), c, m)}", field=f"body.windows[{b}][{t}][{c}]")
+    arr = arr.astype(np.float32)
     t0 = time.perf_counter()
     result = model.scorer.score(arr)
     metrics.scoring_seconds.observe(time.perf_counter() - t0)
