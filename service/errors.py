@@ -109,7 +109,7 @@ def is_busy(exc: BaseException) -> bool:
     return any(t in text for t in SQLITE_BUSY_TEXT)
 
 
-def database_error(exc: DBAPIError) -> Unavailable:
+def database_error(exc: BaseException) -> Unavailable:
     """The domain error for a database operational error: busy (retry in a second) or unreachable."""
     if is_busy(exc):
         return DatabaseBusy("the database is busy with other writes; nothing was stored, send the request again shortly")

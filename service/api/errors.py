@@ -11,13 +11,14 @@ Runtime's (ScoringError, 503) and the database's (service.errors.database_error:
 from __future__ import annotations
 
 import logging
+import sqlite3
 from collections.abc import Sequence
 from typing import Any
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
-from sqlalchemy.exc import DBAPIError, OperationalError
+from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import (
@@ -132,10 +133,12 @@ def install_error_handlers(app: FastAPI) -> None:
         return error_response(503, "scoring_failed", f"the model could not score this request: {exc}")
 
     async def _db(_req: Request, exc: Exception) -> JSONResponse:
-        assert isinstance(exc, DBAPIError)
         log.warning("database %s: %s", "busy" if is_busy(exc) else "error", exc)
         return domain_response(database_error(exc))
 
     # psycopg raises serialization failures, deadlocks and lock/statement timeouts as
-    # OperationalError subclasses, SQLite its busy/locked errors likewise.
+    # OperationalError subclasses, SQLite its busy/locked errors likewise. The driver's own
+    # sqlite3.OperationalError arrives unwrapped when SQLite is busy at the BEGIN IMMEDIATE
+    # that service/db/session.py issues on the driver connection itself.
     app.add_exception_handler(OperationalError, _db)
+    app.add_exception_handler(sqlite3.OperationalError, _db)

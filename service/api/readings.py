@@ -10,8 +10,10 @@ from typing import Annotated
 
 import numpy as np
 from fastapi import APIRouter, Path, Query, Request, Response
+from starlette.concurrency import run_in_threadpool
 
 from service.api.deps import DatabaseDep, DbSession, MachineCaller, MaintenanceCaller, MetricsDep, RegistryDep, SettingsDep
+from service.caller import Caller
 from service.api.schemas import (
     ASSET_ID_PATTERN,
     AssetOut,
@@ -50,9 +52,16 @@ async def post_readings(asset_id: AssetId, request: Request, caller: MachineCall
     and the response is the model serialised once: FastAPI's own body handling (the json
     module, then validation of the decoded objects) and response validation cost about as
     much as the rest of the request's Python (bench/ingest.py). Errors read as FastAPI's.
-    Runs on the event loop, not in the thread pool: ingest is CPU work, so a worker thread
-    would only add hand-overs of the GIL between it and the loop."""
-    body = parse_body(ReadingsIn, await request.body())
+    Only the body is awaited on the event loop; parsing, ingest and the response run in the
+    thread pool in one hop: ingest waits for the database (the write lock, SQLite's busy
+    timeout, a PostgreSQL row lock, the retry's sleep), and a wait on the loop would stall
+    every other request of the worker, health checks included."""
+    raw = await request.body()
+    return await run_in_threadpool(_post_readings, request, asset_id, caller, raw)
+
+
+def _post_readings(request: Request, asset_id: str, caller: Caller, raw: bytes) -> Response:
+    body = parse_body(ReadingsIn, raw)
     state = request.app.state
     result = ingest(
         db=state.db, registry=state.registry, settings=state.settings, metrics=state.metrics, caller=caller, asset_id=asset_id,
