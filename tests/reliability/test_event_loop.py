@@ -44,15 +44,17 @@ def test_healthz_stays_prompt_while_failing_writes_and_ingest_run(tmp_path: Path
                           headers={"Authorization": f"Bearer {keys['operator']}"})
                 statuses["fail"].append(r.status_code)
 
-    def ingest() -> None:
-        start = support.aligned_start(120)  # 6000 one-minute readings end 20 h ago
-        rows = support.readings(start, 6000)
-        with httpx.Client(base_url=server.url, timeout=30.0) as c:
-            for batch in support.batches_of(rows, 30):
-                if stop.is_set():
-                    return
-                r = c.post("/v1/assets/pump-01/readings", json={"readings": batch}, headers={"Authorization": f"Bearer {keys['machine']}"})
-                statuses["ingest"].append(r.status_code)
+    def ingest_into(asset: str):  # type: ignore[no-untyped-def]
+        def ingest() -> None:
+            start = support.aligned_start(120)  # 6000 one-minute readings end 20 h ago
+            rows = support.readings(start, 6000)
+            with httpx.Client(base_url=server.url, timeout=30.0) as c:
+                for batch in support.batches_of(rows, 30):
+                    if stop.is_set():
+                        return
+                    r = c.post(f"/v1/assets/{asset}/readings", json={"readings": batch}, headers={"Authorization": f"Bearer {keys['machine']}"})
+                    statuses["ingest"].append(r.status_code)
+        return ingest
 
     def health() -> None:
         with httpx.Client(base_url=server.url, timeout=30.0) as c:
@@ -74,7 +76,7 @@ def test_healthz_stays_prompt_while_failing_writes_and_ingest_run(tmp_path: Path
                 errors.append(f"{work.__name__}: {type(e).__name__}: {e}")
         return run
 
-    threads = [threading.Thread(target=guarded(f), daemon=True) for f in (failing_writes, failing_writes, ingest, health)]
+    threads = [threading.Thread(target=guarded(f), daemon=True) for f in (failing_writes, failing_writes, ingest_into("pump-01"), ingest_into("pump-02"), health)]
     try:
         for t in threads:
             t.start()
@@ -86,12 +88,12 @@ def test_healthz_stays_prompt_while_failing_writes_and_ingest_run(tmp_path: Path
         stop.set()
         server.stop()
     log = server.log.read_text(errors="replace")
-    assert not errors, (errors, log[-3000:])
     lat = np.asarray(latencies_ms)
     p50, p95, worst = np.percentile(lat, 50), np.percentile(lat, 95), lat.max()
     print(f"\n/healthz under failing writes + ingest: {len(lat)} checks, p50 {p50:.1f} ms, p95 {p95:.1f} ms, max {worst:.1f} ms; "
           f"failing writes {len(statuses['fail'])} ({sorted(set(statuses['fail']))}), ingest posts {len(statuses['ingest'])} "
           f"({sorted(set(statuses['ingest']))})")
+    assert not errors, (errors, log[-3000:])
     assert len(lat) >= 50, "too few health checks to judge"
     assert len(statuses["fail"]) >= 20 and len(statuses["ingest"]) >= 5, statuses
     assert set(statuses["fail"]) == {404}, "a failing write must fail as itself, not as a busy database"
