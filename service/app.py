@@ -26,7 +26,7 @@ from fastapi.staticfiles import StaticFiles
 
 from service.db.migrate import current_revision, head_revision, upgrade
 from service.db.session import Database
-from service.errors import error_response, install_error_handlers
+from service.api.errors import error_response, install_error_handlers
 from service.metrics import Metrics
 from service.models_registry import ModelRegistry
 from service.api.docs import install_docs

@@ -42,6 +42,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     r.add_argument("--batch", type=int, default=60, help="readings per request (default 60)")
     r.add_argument("--assets", help="comma-separated subset of the file's assets")
     r.add_argument("--retries", type=int, default=6, help="retries per batch on connection errors, 5xx and 429")
+    r.add_argument("--stop-on-refusal", action="store_true",
+                   help="stop at the first batch the service refuses (default: skip it, report it at the end, exit 1)")
     r.set_defaults(handler=cmd_replay)
 
     d = subparsers.add_parser("demo", help="serve the bundled model on a fresh database and replay a demo day with faults")
@@ -152,11 +154,13 @@ def cmd_replay(args: argparse.Namespace) -> int:
                 raise ReplayError(f"{args.data}: no readings for {', '.join(missing)}; the file has {', '.join(series)}")
             series = {a: series[a] for a in wanted}
         summary = replay(url=args.url, key=args.key, channels=channels, series=series, batch=args.batch,
-                         speed=args.speed, retries=args.retries)
+                         speed=args.speed, retries=args.retries, stop_on_refusal=args.stop_on_refusal)
     except ReplayError as e:
         raise CommandError(str(e)) from e
     print(summary.line())
-    return 0
+    for refused in summary.refused:
+        print(refused.line(), file=sys.stderr)
+    return 1 if summary.refused else 0
 
 
 def cmd_demo(args: argparse.Namespace) -> int:

@@ -1,31 +1,25 @@
-"""Our exception hierarchy, and the ONE place that maps errors to HTTP responses.
+"""Our exception hierarchy: domain errors that say what went wrong, not how HTTP shows it.
 
-Every error body is `{"error": {"code", "message", "field"?, "details"?}}`. Pydantic's
-request validation errors become the same shape with the field path written as
-`body.readings[3].ts`. Library errors (SQL, ONNX Runtime) are converted here too.
+Every layer (ingest, service/db, the dashboard's actions, the registry) raises these;
+the HTTP status of each and the error body are decided in ONE place,
+service/api/errors.py. A domain error carries a stable `code`, a plain `message` naming
+what was wrong and what would be accepted, and optionally the `field` path
+(`body.readings[3].ts`) and `details`.
+
+Database errors are converted here too (`database_error`), so the mapping of a busy or
+locked database to "retry shortly" has one home whatever raised it.
 """
 
 from __future__ import annotations
 
-import logging
-from collections.abc import Sequence
 from typing import Any
 
-from fastapi import FastAPI, Request
-from fastapi.exceptions import RequestValidationError
-from fastapi.responses import JSONResponse
-from sqlalchemy.exc import OperationalError
-from starlette.exceptions import HTTPException as StarletteHTTPException
-
-from service.scoring import ScoringError
-
-log = logging.getLogger("kilter")
+from sqlalchemy.exc import DBAPIError
 
 
 class KilterError(Exception):
-    """Base of our errors; `status` and `code` decide the HTTP response."""
+    """Base of our errors; `code` names the kind for clients."""
 
-    status: int = 500
     code: str = "internal_error"
 
     def __init__(self, message: str, *, field: str | None = None, details: dict[str, Any] | None = None) -> None:
@@ -44,101 +38,90 @@ class KilterError(Exception):
 
 
 class BadInput(KilterError):
-    status, code = 422, "bad_input"
+    code = "bad_input"
 
 
 class NotFound(KilterError):
-    status, code = 404, "not_found"
+    code = "not_found"
 
 
 class Conflict(KilterError):
-    status, code = 409, "conflict"
+    code = "conflict"
 
 
 class TooLarge(KilterError):
-    status, code = 413, "too_large"
+    code = "too_large"
 
 
 class Unauthorized(KilterError):
-    status, code = 401, "unauthorized"
+    code = "unauthorized"
 
 
 class Forbidden(KilterError):
-    status, code = 403, "forbidden"
+    code = "forbidden"
 
 
 class Unavailable(KilterError):
-    status, code = 503, "unavailable"
+    """Something the request needs is not there now; `retry_after_s` says when to retry."""
+
+    code = "unavailable"
+    retry_after_s: int | None = None
+
+    def __init__(self, message: str, *, retry_after_s: int | None = None, **kw: Any) -> None:
+        super().__init__(message, **kw)
+        if retry_after_s is not None:
+            self.retry_after_s = retry_after_s
+
+
+class DatabaseBusy(Unavailable):
+    """The database held a lock past our wait (SQLite busy timeout, PostgreSQL lock or
+    statement timeout) or aborted the transaction to resolve a conflict (serialization
+    failure, deadlock): nothing was stored, the same request can simply be sent again."""
+
+    code = "database_busy"
+    retry_after_s = 1
+
+
+class DatabaseUnavailable(Unavailable):
+    code = "database_unavailable"
+    retry_after_s = 5
 
 
 class ModelError(KilterError):
     """A model folder failed validation (load, names/shapes, sha256, self test)."""
 
-    status, code = 409, "model_invalid"
+    code = "model_invalid"
 
 
-def field_path(loc: Sequence[str | int]) -> str:
-    """('body', 'readings', 3, 'ts') -> 'body.readings[3].ts'."""
-    out = ""
-    for part in loc:
-        if isinstance(part, int):
-            out += f"[{part}]"
-        else:
-            out += ("." if out else "") + str(part)
-    return out
+# SQLSTATEs that mean "busy, try again" on PostgreSQL: lock_not_available (lock_timeout,
+# NOWAIT), query_canceled (statement_timeout), serialization_failure, deadlock_detected.
+PG_BUSY_SQLSTATES = frozenset({"55P03", "57014", "40001", "40P01"})
+# SQLite's messages for SQLITE_BUSY / SQLITE_LOCKED.
+SQLITE_BUSY_TEXT = ("database is locked", "database table is locked", "database is busy")
 
 
-_HINTS = {
-    "finite_number": "NaN and infinity are refused; send null for a value that was not measured",
-    "float_type": "send a JSON number, or null for a value that was not measured",
-    "extra_forbidden": "this field is not part of the request",
-}
+def is_busy(exc: BaseException) -> bool:
+    """True for a driver error that means the database was busy (see DatabaseBusy)."""
+    orig = exc.orig if isinstance(exc, DBAPIError) else exc
+    if getattr(orig, "sqlstate", None) in PG_BUSY_SQLSTATES:
+        return True
+    text = str(orig).lower()
+    return any(t in text for t in SQLITE_BUSY_TEXT)
 
 
-def _plain(error: dict[str, Any]) -> str:
-    """Pydantic's message with a hint of what would be accepted."""
-    msg = str(error.get("msg", "invalid value"))
-    hint = _HINTS.get(str(error.get("type", "")))
-    return f"{msg} ({hint})" if hint else msg
+def database_error(exc: BaseException) -> Unavailable:
+    """The domain error for a database operational error: busy (retry in a second) or unreachable."""
+    if is_busy(exc):
+        return DatabaseBusy("the database is busy with other writes; nothing was stored, send the request again shortly")
+    return DatabaseUnavailable("the database is unreachable or failing; retry shortly")
 
 
-def error_response(status: int, code: str, message: str, field: str | None = None, **extra: Any) -> JSONResponse:
-    err: dict[str, Any] = {"code": code, "message": message}
-    if field is not None:
-        err["field"] = field
-    err.update(extra)
-    headers = {"WWW-Authenticate": "Bearer"} if status == 401 else None
-    return JSONResponse({"error": err}, status_code=status, headers=headers)
+def __getattr__(name: str) -> Any:
+    """The HTTP helpers lived here before the mapping moved to service/api/errors.py; code
+    that still imports them from here gets them from there (imported on first use, so this
+    module itself stays free of the web framework)."""
+    if name in ("error_response", "install_error_handlers", "field_path", "http_status"):
+        from service.api import errors as http_errors
 
-
-def install_error_handlers(app: FastAPI) -> None:
-    @app.exception_handler(KilterError)
-    async def _ours(_req: Request, exc: KilterError) -> JSONResponse:
-        headers = {"WWW-Authenticate": "Bearer"} if exc.status == 401 else None
-        return JSONResponse(exc.body(), status_code=exc.status, headers=headers)
-
-    @app.exception_handler(RequestValidationError)
-    async def _validation(_req: Request, exc: RequestValidationError) -> JSONResponse:
-        errors = exc.errors()
-        first = errors[0] if errors else {"loc": (), "msg": "invalid request"}
-        path = field_path(first.get("loc", ()))
-        msg = _plain(first)
-        more = [{"field": field_path(e.get("loc", ())), "message": str(e.get("msg", ""))} for e in errors[1:20]]
-        message = f"{path}: {msg}" if path else msg
-        extra = {"details": {"more": more}} if more else {}
-        return error_response(422, "bad_input", message, path or None, **extra)
-
-    @app.exception_handler(StarletteHTTPException)
-    async def _http(_req: Request, exc: StarletteHTTPException) -> JSONResponse:
-        codes = {401: "unauthorized", 403: "forbidden", 404: "not_found", 405: "method_not_allowed", 413: "too_large"}
-        return error_response(exc.status_code, codes.get(exc.status_code, "http_error"), str(exc.detail))
-
-    @app.exception_handler(ScoringError)
-    async def _scoring(_req: Request, exc: ScoringError) -> JSONResponse:
-        log.error("scoring failed: %s", exc)
-        return error_response(503, "scoring_failed", f"the model could not score this request: {exc}")
-
-    @app.exception_handler(OperationalError)
-    async def _db(_req: Request, exc: OperationalError) -> JSONResponse:
-        log.error("database error: %s", exc)
-        return error_response(503, "database_unavailable", "the database is busy or unreachable; retry shortly")
+        return getattr(http_errors, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

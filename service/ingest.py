@@ -69,7 +69,7 @@ from sqlalchemy.orm import Session
 
 from service import grid
 from service.alerting import AlertRule, RuleState, step
-from service.api.deps import Caller
+from service.caller import Caller
 from service.db import readings as q
 from service.db import rule_alerts
 from service.db import ingest_sql as store
@@ -81,6 +81,7 @@ from service.errors import BadInput, Conflict, Forbidden, TooLarge
 from service.manifest import Manifest
 from service.metrics import Metrics
 from service.models_registry import LoadedModel, ModelRegistry
+from service.scoring import first_implausible, implausible_message
 from service.settings import Settings
 
 log = logging.getLogger("kilter")
@@ -129,11 +130,14 @@ class WindowPlan:
 
 
 def validate_batch(
-    readings: Sequence[RawReading], *, channels: Sequence[str], now_s: float, future_tolerance_s: float
+    readings: Sequence[RawReading], *, channels: Sequence[str], now_s: float, future_tolerance_s: float,
+    manifest: Manifest | None = None,
 ) -> tuple[np.ndarray, np.ndarray, list[dict[str, float | None]]]:
     """(ts_ms int64 (N,), values float64 (N, C) in channel order with NaN for null, the values
     dicts as given); BadInput naming `body.readings[i]...` for unknown or missing channels, a
-    timestamp too far in the future, or one timestamp twice with different values."""
+    timestamp too far in the future, one timestamp twice with different values, or (given
+    the model's `manifest`) a value outside its plausible limits (service/manifest.py): a
+    finite 1e300 or 3e38 would otherwise be stored and break every later window of the asset."""
     expected = list(channels)
     expected_set = set(expected)
     latest_ok = now_s + future_tolerance_s
@@ -168,6 +172,12 @@ def validate_batch(
         dicts.append(given)
     ts_ms = np.array(ts_list, dtype=np.int64)
     values = np.array(rows, dtype=np.float64).reshape(len(rows), len(expected))
+    if manifest is not None:
+        bad = first_implausible(values, manifest)
+        if bad is not None:
+            i, c = bad
+            where = f"body.readings[{i}].values.{expected[c]}"
+            raise BadInput(f"{where}: {implausible_message(float(values[i, c]), c, manifest)}", field=where)
     return ts_ms, values, dicts
 
 
@@ -322,7 +332,8 @@ def ingest(
             asset = check_asset_access(s, caller=caller, asset_id=asset_id)
         model = resolve_model(registry, asset, asset_id)
     ts_ms, values, dicts = validate_batch(
-        readings, channels=model.channels, now_s=now.timestamp(), future_tolerance_s=settings.future_tolerance_s
+        readings, channels=model.channels, now_s=now.timestamp(), future_tolerance_s=settings.future_tolerance_s,
+        manifest=model.manifest,
     )
     batch = _Batch(asset_id=asset_id, ts_ms=ts_ms, values=values, dicts=dicts, now=now)
     # The plan (duplicates, windows, scores) is made before the write lock, from one view of

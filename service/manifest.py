@@ -10,7 +10,8 @@ import hashlib
 import json
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Literal
+from collections.abc import Sequence
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
@@ -49,6 +50,63 @@ class Scaler(_Strict):
         if any(not (s > 0) for s in v):
             raise ValueError("every scale must be > 0")
         return v
+
+
+# Plausible limits (decided here, the one home; DEVELOPERS.md repeats it). A reading is
+# plausible for a channel when it lies within PLAUSIBLE_SCALES scaler scales of the
+# channel's centre, widened to every value the trainer saw for that channel, and never
+# beyond +-FLOAT32_SAFE. Why these numbers:
+# * 10,000 scales is far outside anything a working or failing machine produces (the demo
+#   pump's bearing: 31.6 +- 40,000 degC; its vibration 1.4 +- 2,260 mm/s, a hundred times
+#   ISO 10816's zone D), so a real fault is always scored and alerted, never refused; what
+#   it refuses are sentinels and overflows (1e300, 3e38, a float32 max sent as a value).
+# * Inside it the graph's arithmetic cannot overflow float32: the scaled input stays
+#   within +-1e4 (plus the training range), its squared error within ~1e8, a Mahalanobis
+#   score within ~n * max|precision| * 1e8, all far below float32's 3.4e38, so no stored
+#   reading can make scoring fail.
+# * The raw value itself must survive the cast to float32 (the graph's input type), hence
+#   the clip to +-1e38.
+# A manifest written before limits existed gets them derived from its scaler on load (the
+# same rule without the training range): the rule above with the centre standing in for it.
+PLAUSIBLE_SCALES = 10_000.0
+FLOAT32_SAFE = 1e38
+
+
+class PlausibleLimits(_Strict):
+    """Per-channel bounds of a plausible raw reading, in input order (rule: PLAUSIBLE_SCALES)."""
+
+    low: list[float]
+    high: list[float]
+    source: Literal["training", "scaler"] = Field(
+        description="training: centre +- scales widened to the training data; scaler: derived from the scaler alone"
+    )
+
+    @model_validator(mode="after")
+    def _ordered(self) -> PlausibleLimits:
+        if len(self.low) != len(self.high):
+            raise ValueError("plausible low and high need one value per channel each")
+        for lo, hi in zip(self.low, self.high):
+            if not (-FLOAT32_SAFE <= lo < hi <= FLOAT32_SAFE):
+                raise ValueError(f"plausible limits must satisfy -{FLOAT32_SAFE:g} <= low < high <= {FLOAT32_SAFE:g}, got {lo} .. {hi}")
+        return self
+
+
+def plausible_limits(
+    center: Sequence[float],
+    scale: Sequence[float],
+    *,
+    observed_low: Sequence[float] | None = None,
+    observed_high: Sequence[float] | None = None,
+) -> PlausibleLimits:
+    """The plausible limits the trainer writes (observed_*: per-channel min and max of the
+    data it trained on) or a loader derives for an older manifest (no observed range)."""
+    seen_lo = observed_low if observed_low is not None else center
+    seen_hi = observed_high if observed_high is not None else center
+    low, high = [], []
+    for c, s, lo, hi in zip(center, scale, seen_lo, seen_hi):
+        low.append(max(-FLOAT32_SAFE, min(float(c), float(lo)) - PLAUSIBLE_SCALES * float(s)))
+        high.append(min(FLOAT32_SAFE, max(float(c), float(hi)) + PLAUSIBLE_SCALES * float(s)))
+    return PlausibleLimits(low=low, high=high, source="training" if observed_low is not None else "scaler")
 
 
 class GapPolicy(_Strict):
@@ -169,6 +227,16 @@ class Manifest(_Strict):
     onnx_file: str = ONNX_FILE
     onnx_sha256: str = Field(pattern=r"^[0-9a-f]{64}$")
     calibration_file: str = CALIBRATION_FILE
+    plausible: PlausibleLimits = Field(description="readings outside these are refused (see PLAUSIBLE_SCALES)")
+
+    @model_validator(mode="before")
+    @classmethod
+    def _derive_plausible(cls, data: Any) -> Any:
+        """A manifest from before plausible limits gets them from its scaler (same rule)."""
+        if isinstance(data, dict) and data.get("plausible") is None and isinstance(data.get("scaler"), (dict, Scaler)):
+            scaler = data["scaler"] if isinstance(data["scaler"], Scaler) else Scaler.model_validate(data["scaler"])
+            data = {**data, "plausible": plausible_limits(scaler.center, scaler.scale)}
+        return data
 
     @field_validator("created_at")
     @classmethod
@@ -185,6 +253,11 @@ class Manifest(_Strict):
             raise ValueError("channel names must be unique")
         if len(self.scaler.center) != n or len(self.scaler.scale) != n:
             raise ValueError(f"scaler needs {n} centre and scale values, one per channel")
+        if len(self.plausible.low) != n:
+            raise ValueError(f"plausible limits need {n} low and high values, one per channel")
+        for name, c, lo, hi in zip(names, self.scaler.center, self.plausible.low, self.plausible.high):
+            if not lo <= c <= hi:
+                raise ValueError(f"plausible limits of {name!r} ({lo} .. {hi}) must contain the scaler centre {c}")
         if self.score.method == "mahalanobis":
             if self.score.error_mean is None or self.score.error_precision is None:
                 raise ValueError("mahalanobis score needs error_mean and error_precision")

@@ -3,6 +3,15 @@ order, in batches, interleaved across assets by time, with retries and a progres
 
 Retrying is safe because ingest is idempotent on (asset, timestamp): a batch whose
 response was lost is re-sent and its readings count as duplicates.
+
+A batch the service refuses for its content (409: a reading stored before with other
+values; 422: a bad value, say one outside the model's plausible limits) is skipped, with
+the server's message kept, and the replay carries on: the rest of the file is still worth
+having, and ingest stores nothing of a refused batch, so the skip is clean. The summary
+lists every skipped batch (the command prints them and exits 1). Refusals that every
+batch would get (401/403: the key; 404; 413: --batch too large) stop the replay at once,
+and so do `MAX_REFUSED_IN_A_ROW` content refusals in a row (the file does not fit the
+model at all, e.g. other channels). `stop_on_refusal` stops at the first one.
 """
 
 from __future__ import annotations
@@ -23,10 +32,32 @@ import numpy as np
 from service.grid import TimestampError, parse_timestamp
 
 RETRY_STATUS = {429, 500, 502, 503, 504}
+SKIP_STATUS = {409, 422}  # the batch's content was refused: skip it, report it, carry on
+MAX_REFUSED_IN_A_ROW = 10
 
 
 class ReplayError(RuntimeError):
     """The file cannot be read or the service refused a batch; the message says which."""
+
+
+class BatchRefused(ReplayError):
+    """The service refused one batch for its content (SKIP_STATUS)."""
+
+    def __init__(self, message: str, *, status: int, server_message: str) -> None:
+        super().__init__(message)
+        self.status, self.server_message = status, server_message
+
+
+@dataclass(frozen=True)
+class RefusedBatch:
+    """A batch the service refused and the replay skipped."""
+
+    where: str  # "asset pump-01 readings 120..179"
+    status: int
+    message: str  # the server's own message (it names the reading, channel and value)
+
+    def line(self) -> str:
+        return f"{self.where}: refused ({self.status}): {self.message}"
 
 
 @dataclass(frozen=True)
@@ -49,12 +80,15 @@ class ReplaySummary:
     alerts_returned: int = 0
     seconds: float = 0.0
     per_asset: dict[str, dict[str, int]] = field(default_factory=dict)
+    refused: list[RefusedBatch] = field(default_factory=list)
+    refused_readings: int = 0
 
     def line(self) -> str:
+        skipped = f", {len(self.refused)} batches ({self.refused_readings} readings) refused and skipped" if self.refused else ""
         return (
             f"replayed {self.readings} readings in {self.requests} requests ({self.retries} retries) in {self.seconds:.1f} s: "
             f"accepted {self.accepted}, duplicates {self.duplicates}, late {self.late}, windows scored {self.windows_scored}, "
-            f"gap windows {self.gap_windows}, alerts opened {self.alerts_opened}"
+            f"gap windows {self.gap_windows}, alerts opened {self.alerts_opened}{skipped}"
         )
 
 
@@ -141,8 +175,11 @@ def replay(
     progress: bool = True,
     client: httpx.Client | None = None,
     sleep: Callable[[float], None] = time.sleep,
+    stop_on_refusal: bool = False,
 ) -> ReplaySummary:
-    """Post every asset's readings in batches of `batch`; `speed` = times real time (None: as fast as possible)."""
+    """Post every asset's readings in batches of `batch`; `speed` = times real time (None: as
+    fast as possible). Batches refused for their content are skipped and listed in the
+    summary's `refused` (see the module docstring)."""
     if batch < 1:
         raise ReplayError("--batch must be at least 1")
     if speed is not None and not speed > 0:
@@ -158,6 +195,7 @@ def replay(
                disable=(not progress) or bool(os.environ.get("CI")))
     t_wall0 = time.monotonic()
     t_data0 = plan[0][0] if plan else 0.0
+    in_a_row = 0  # content refusals since the last accepted batch
     try:
         for first_ts, asset, lo, hi in plan:
             if speed is not None:
@@ -165,8 +203,20 @@ def replay(
                 if wait > 0:
                     sleep(wait)
             body = _body(channels, series[asset], lo, hi)
-            out = _post(http, f"/v1/assets/{asset}/readings", body, headers, retries, backoff_s, summary, sleep,
-                        where=f"asset {asset} readings {lo}..{hi - 1}")
+            where = f"asset {asset} readings {lo}..{hi - 1}"
+            try:
+                out = _post(http, f"/v1/assets/{asset}/readings", body, headers, retries, backoff_s, summary, sleep, where=where)
+            except BatchRefused as e:
+                summary.requests += 1
+                summary.refused.append(RefusedBatch(where, e.status, e.server_message))
+                summary.refused_readings += hi - lo
+                in_a_row += 1
+                if stop_on_refusal or in_a_row >= MAX_REFUSED_IN_A_ROW:
+                    why = "" if stop_on_refusal else f"{in_a_row} batches in a row were refused, so the file does not fit; "
+                    raise ReplayError(f"{why}stopping at {e}") from e
+                bar.update(hi - lo)
+                continue
+            in_a_row = 0
             summary.requests += 1
             per = summary.per_asset.setdefault(asset, {"accepted": 0, "windows_scored": 0, "alerts_opened": 0})
             for k in ("accepted", "duplicates", "late", "windows_scored", "gap_windows", "alerts_opened", "alerts_returned"):
@@ -194,6 +244,9 @@ def _post(
         else:
             if r.status_code == 200:
                 return r.json()
+            if r.status_code in SKIP_STATUS:
+                msg = _message(r)
+                raise BatchRefused(f"{where}: the service refused the batch ({r.status_code}): {msg}", status=r.status_code, server_message=msg)
             if r.status_code not in RETRY_STATUS:
                 raise ReplayError(f"{where}: the service refused the batch ({r.status_code}): {_message(r)}")
             reason = f"HTTP {r.status_code}: {_message(r)}"

@@ -76,6 +76,29 @@ def validate_windows(windows: np.ndarray, manifest: Manifest) -> np.ndarray:
     return arr
 
 
+def first_implausible(values: np.ndarray, manifest: Manifest) -> tuple[int, ...] | None:
+    """Index of the first value (in C order) outside the manifest's plausible limits, None if
+    all lie inside; the last axis is the channel, NaN (missing) is never implausible."""
+    low = np.asarray(manifest.plausible.low, dtype=np.float64)
+    high = np.asarray(manifest.plausible.high, dtype=np.float64)
+    arr = np.asarray(values, dtype=np.float64)
+    bad = (arr < low) | (arr > high)  # NaN compares False both ways
+    if not bad.any():
+        return None
+    return tuple(int(i) for i in np.argwhere(bad)[0])
+
+
+def implausible_message(value: float, channel: int, manifest: Manifest) -> str:
+    """What was wrong with an implausible value and what would be accepted."""
+    ch = manifest.channels[channel]
+    lo, hi = manifest.plausible.low[channel], manifest.plausible.high[channel]
+    return (
+        f"{value!r} {ch.unit} is outside the plausible range of channel {ch.name!r} for model "
+        f"{manifest.model_id} {manifest.version} ({lo:.6g} .. {hi:.6g} {ch.unit}, far beyond anything it was trained on); "
+        "send null for a value that was not measured, and check the sensor's scaling"
+    )
+
+
 class OnnxScorer:
     """ONNX Runtime session over one model folder (manifest.json + model.onnx)."""
 
@@ -92,6 +115,8 @@ class OnnxScorer:
         self.model_dir = Path(model_dir)
         self.manifest = manifest or load_manifest(self.model_dir)
         self.chunk_size = max(int(chunk_size), 1)
+        self._low = np.asarray(self.manifest.plausible.low, dtype=np.float32)
+        self._high = np.asarray(self.manifest.plausible.high, dtype=np.float32)
         path = self.model_dir / self.manifest.onnx_file
         if not path.is_file():
             raise ScoringError(f"{path}: ONNX file missing")
@@ -126,6 +151,11 @@ class OnnxScorer:
 
     def score(self, windows: np.ndarray) -> ScoreResult:
         arr = validate_windows(windows, self.manifest)
+        # Within the plausible limits the graph cannot overflow (service/manifest.py), and the
+        # service refuses readings outside them; a value stored before (another model's
+        # limits, an older version) is held at the limit, so scoring never fails on it.
+        if first_implausible(arr, self.manifest) is not None:
+            arr = np.clip(arr, self._low, self._high)
         if len(arr) == 0:
             w, c = arr.shape[1:]
             empty = np.empty((0, w, c), np.float32)

@@ -17,7 +17,7 @@ import numpy as np
 import torch
 
 from service import grid as G
-from service.manifest import Channel, GapPolicy, Manifest, Scaler, TrainingSummary, ValidationFigures
+from service.manifest import Channel, GapPolicy, Manifest, Scaler, TrainingSummary, ValidationFigures, plausible_limits
 from training.calibrate import Calibration, calibrate, fit_mahalanobis, model_outputs, score_windows
 from training.config import TrainConfig
 from training.dataset import ArrayWindows, Prepared, prepare_with
@@ -229,6 +229,9 @@ def train_logs(
     flops = flops_per_window(mc, n_channels, d.window)
     t_all = np.concatenate([a.times_s for a in logs.assets.values()])
     own_events = [e for e in events if e.asset in logs.assets]
+    seen = np.concatenate([g.values for g in prepared.grids.values()])  # (T, C) every aligned point, NaN = missing
+    plausible = plausible_limits(prepared.scaler_center, prepared.scaler_scale,
+                                 observed_low=np.nanmin(seen, axis=0).tolist(), observed_high=np.nanmax(seen, axis=0).tolist())
 
     def build_manifest(onnx_sha256: str, parity: Parity) -> Manifest:
         return Manifest(
@@ -266,6 +269,7 @@ def train_logs(
                 extra={k: float(v) for k, v in figures.items() if np.isfinite(v) and k not in TIMING_FIGURES},
             ),
             onnx_sha256=onnx_sha256,
+            plausible=plausible,
         )
 
     examples = _examples(model, prepared, cal_scores, faulty, fault_scores)

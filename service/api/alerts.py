@@ -12,6 +12,7 @@ from typing import Annotated
 from fastapi import APIRouter, Path, Query
 
 from service.alert_health import chatter_horizon_ms, health
+from service import actions
 from service.api.deps import DbSession, MaintenanceCaller, RegistryDep, WriteSession
 from service.api.schemas_alerts import (
     AcknowledgeIn,
@@ -92,8 +93,7 @@ def _detail(detail: q.AlertDetail, registry: RegistryDep) -> AlertDetail:
 
 @router.post("/alerts/{alert_id}/acknowledge", response_model=AlertOut)
 def acknowledge(alert_id: AlertId, db: WriteSession, caller: MaintenanceCaller, body: AcknowledgeIn | None = None) -> AlertOut:
-    q.get_alert(db, alert_id=alert_id, allowed_assets=caller.assets)
-    alert = q.acknowledge(db, alert_id=alert_id, actor=caller.name, note=body.note if body else None)
+    alert = actions.acknowledge_alert(db, caller=caller, alert_id=alert_id, note=body.note if body else None)
     out = alert_out(alert)
     db.commit()
     return out
@@ -101,8 +101,7 @@ def acknowledge(alert_id: AlertId, db: WriteSession, caller: MaintenanceCaller, 
 
 @router.post("/alerts/{alert_id}/close", response_model=AlertOut)
 def close(alert_id: AlertId, body: CloseIn, db: WriteSession, caller: MaintenanceCaller) -> AlertOut:
-    q.get_alert(db, alert_id=alert_id, allowed_assets=caller.assets)
-    alert = q.close(db, alert_id=alert_id, actor=caller.name, outcome=body.outcome, note=body.note)
+    alert = actions.close_alert(db, caller=caller, alert_id=alert_id, outcome=body.outcome, note=body.note)
     out = alert_out(alert)
     db.commit()
     return out
@@ -110,8 +109,7 @@ def close(alert_id: AlertId, body: CloseIn, db: WriteSession, caller: Maintenanc
 
 @router.post("/alerts/{alert_id}/notes", response_model=AlertEventOut, status_code=201)
 def add_note(alert_id: AlertId, body: NoteIn, db: WriteSession, caller: MaintenanceCaller) -> AlertEventOut:
-    q.get_alert(db, alert_id=alert_id, allowed_assets=caller.assets)
-    event = q.add_note(db, alert_id=alert_id, actor=caller.name, note=body.note)
+    event = actions.note_alert(db, caller=caller, alert_id=alert_id, note=body.note)
     out = AlertEventOut(at=event.at, kind=event.kind, actor=event.actor, note=event.note, details=event.details)
     db.commit()
     return out

@@ -3,9 +3,10 @@
 Roles: machine posts readings and scores; maintenance < operator < admin for people;
 admin may also do machine actions. Machine keys may be limited to named assets.
 
-The trivial dependencies are `async def` so FastAPI runs them on the event loop instead of
-hopping to the thread pool for each (a measurable share of a request's time); so is the
-key look-up (one indexed row); sessions stay plain functions and run in the pool.
+The trivial dependencies (no I/O) are `async def` so FastAPI runs them on the event loop
+instead of hopping to the thread pool for each (a measurable share of a request's time);
+everything that touches the database (the key look-up, sessions) is a plain function and
+runs in the pool: a database wait (a pool checkout, a lock) must never block the loop.
 
 Use in a route:
     def route(db: DbSession, caller: Annotated[Caller, Depends(require_role("operator"))]): ...
@@ -16,39 +17,18 @@ State-changing routes take `WriteSession` (on SQLite it holds the write lock fro
 from __future__ import annotations
 
 from collections.abc import Awaitable, Callable, Iterator
-from dataclasses import dataclass
 from typing import Annotated
 
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
+from service.caller import PEOPLE_RANK, Caller
 from service.db.keys import find_key_fields
 from service.db.session import Database
 from service.errors import Forbidden, Unauthorized
 from service.metrics import Metrics
 from service.models_registry import ModelRegistry
 from service.settings import Settings
-
-PEOPLE_RANK = {"maintenance": 1, "operator": 2, "admin": 3}
-
-
-@dataclass(frozen=True)
-class Caller:
-    key_id: int
-    name: str
-    role: str
-    assets: frozenset[str] | None  # None = every asset
-
-    def has_role(self, needed: str) -> bool:
-        if self.role == "admin":
-            return True
-        if needed == "machine" or self.role == "machine":
-            return self.role == needed
-        return PEOPLE_RANK.get(self.role, 0) >= PEOPLE_RANK[needed]
-
-    def may_use_asset(self, asset_id: str) -> bool:
-        return self.assets is None or asset_id in self.assets
-
 
 async def get_database(request: Request) -> Database:
     return request.app.state.db
@@ -72,8 +52,17 @@ def get_db(request: Request) -> Iterator[Session]:
 
 
 def get_write_db(request: Request) -> Iterator[Session]:
-    with request.app.state.db.write_session() as session:
+    """A write session (on SQLite it holds the write lock from its first query). A route
+    that fails rolls back here, before its error response is built, so the lock is released
+    at once instead of other writers waiting out the busy timeout behind it."""
+    session = request.app.state.db.write_session()
+    try:
         yield session
+    except BaseException:
+        session.rollback()
+        raise
+    finally:
+        session.close()
 
 
 DbSession = Annotated[Session, Depends(get_db)]
@@ -94,13 +83,12 @@ def bearer_key(request: Request) -> str | None:
     return value.strip()
 
 
-async def get_caller(request: Request) -> Caller:
+def get_caller(request: Request) -> Caller:
     """The key's owner; 401 without a key or with a wrong or revoked one.
 
-    On the event loop, not the thread pool: the look-up is one compiled statement on an
-    indexed column (tens of microseconds on SQLite, a loopback round trip on PostgreSQL),
-    less than a hop to a worker thread and back costs, and every authenticated route waits
-    for it."""
+    In the thread pool, not on the event loop: the look-up is one indexed row, but getting a
+    connection can wait (an exhausted pool, an unreachable PostgreSQL), and on the loop that
+    wait would stall every request of the worker."""
     cached = getattr(request.state, "caller", None)
     if isinstance(cached, Caller):
         return cached

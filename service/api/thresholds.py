@@ -17,6 +17,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Path
 
+from service import actions
 from service.alerting import AlertRule
 from service.api.deps import DbSession, MaintenanceCaller, OperatorCaller, RegistryDep, WriteSession
 from service.api.schemas_alerts import (
@@ -181,35 +182,31 @@ def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller
 
 @router.put("/threshold", response_model=ThresholdOut)
 def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, caller: OperatorCaller, registry: RegistryDep) -> ThresholdOut:
-    asset = q.get_asset(db, asset_id=asset_id, for_update=True)  # concurrent changes to one asset take turns
-    model = _model(registry, asset)
-    current = q.ensure_initial_version(db, asset=asset, manifest=model.manifest)
     if body.rollback_to is not None:
-        row = q.rollback(db, asset=asset, to_version=body.rollback_to, reason=body.reason, actor=caller.name, manifest=model.manifest)
+        row, model = actions.rollback_threshold(db, registry, caller=caller, asset_id=asset_id, to_version=body.rollback_to, reason=body.reason)
     else:
-        changes = [f for f in ("warning", "false_alarms_per_week", *TIMING_FIELDS) if getattr(body, f) is not None]
-        if not changes:
-            raise BadInput(
-                "nothing to change: give warning (and optional critical), false_alarms_per_week, rule timing "
-                "(on_k, on_n, off_m, deadband_frac) or rollback_to",
-                field="body",
-            )
-        proposed = _propose(body, q.rule_of(current), model)
-        by_budget = proposed.budget is not None
-        row = q.set_threshold(
-            db,
-            asset=asset,
-            rule=proposed.rule,
-            origin="budget" if by_budget else "manual",
-            reason=body.reason,
-            actor=caller.name,
-            manifest=model.manifest,
-            budget_per_week=body.false_alarms_per_week,
-            details={"method": proposed.budget.choice.method} if proposed.budget is not None else None,
-        )
+        row, model = actions.change_threshold(db, registry, caller=caller, asset_id=asset_id, reason=body.reason,
+                                              propose=lambda current, m: _change(body, current, m))
     out = threshold_out(row, model.manifest.window_period_s)
     db.commit()
     return out
+
+
+def _change(body: ThresholdPut, current: AlertRule, model: LoadedModel) -> actions.RuleChange:
+    changes = [f for f in ("warning", "false_alarms_per_week", *TIMING_FIELDS) if getattr(body, f) is not None]
+    if not changes:
+        raise BadInput(
+            "nothing to change: give warning (and optional critical), false_alarms_per_week, rule timing "
+            "(on_k, on_n, off_m, deadband_frac) or rollback_to",
+            field="body",
+        )
+    proposed = _propose(body, current, model)
+    return actions.RuleChange(
+        rule=proposed.rule,
+        origin="budget" if proposed.budget is not None else "manual",
+        budget_per_week=body.false_alarms_per_week,
+        details={"method": proposed.budget.choice.method} if proposed.budget is not None else None,
+    )
 
 
 def _shelve_out(asset: Asset) -> ShelveOut:
@@ -224,8 +221,7 @@ def _shelve_out(asset: Asset) -> ShelveOut:
 
 @router.post("/shelve", response_model=ShelveOut)
 def shelve(asset_id: AssetId, body: ShelveIn, db: WriteSession, caller: OperatorCaller) -> ShelveOut:
-    asset = q.get_asset(db, asset_id=asset_id, for_update=True)
-    q.shelve(db, asset=asset, until=body.until, reason=body.reason, actor=caller.name)
+    asset = actions.shelve_asset(db, caller=caller, asset_id=asset_id, until=body.until, reason=body.reason)
     out = _shelve_out(asset)
     db.commit()
     return out
@@ -233,8 +229,7 @@ def shelve(asset_id: AssetId, body: ShelveIn, db: WriteSession, caller: Operator
 
 @router.delete("/shelve", response_model=ShelveOut)
 def unshelve(asset_id: AssetId, db: WriteSession, caller: OperatorCaller) -> ShelveOut:
-    asset = q.get_asset(db, asset_id=asset_id, for_update=True)
-    q.unshelve(db, asset=asset, actor=caller.name)
+    asset = actions.unshelve_asset(db, caller=caller, asset_id=asset_id)
     out = _shelve_out(asset)
     db.commit()
     return out

@@ -8,7 +8,7 @@ from urllib.parse import urlsplit
 
 from fastapi import Request
 
-from service.api.deps import PEOPLE_RANK, Caller
+from service.caller import PEOPLE_RANK, Caller
 from service.db.session import sqlite_file
 from service.web.queries import key_by_id
 from service.web.session import DEFAULT_MAX_AGE_S, SESSION_COOKIE, SessionCodec, WebSession, resolve_secret

@@ -26,12 +26,14 @@ from jinja2 import Environment, FileSystemLoader, select_autoescape
 from pydantic import ValidationError
 from sqlalchemy.orm import Session
 
+from service import actions
+from service.alerting import AlertRule
 from service.api.deps import PEOPLE_RANK
+from service.api.errors import http_status
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
-from service.db import thresholds as threshold_q
 from service.db.keys import find_key
-from service.errors import Conflict, KilterError
+from service.errors import KilterError
 from service.models_registry import LoadedModel
 from service.web import pages, views
 from service.web.access import WebUser, codec_for, current_user, same_origin
@@ -172,8 +174,9 @@ def _after_post(path: str, done: str, anchor: str = "") -> RedirectResponse:
 
 
 def _failed(request: Request, user: WebUser | None, e: KilterError, back: str) -> HTMLResponse:
-    heading = {404: "Not found", 409: "Already changed", 422: "Cannot use that input"}.get(e.status, "Could not do that")
-    return _error_page(request, user, e.status, heading, e.message, back)
+    status = http_status(e)
+    heading = {404: "Not found", 409: "Already changed", 422: "Cannot use that input"}.get(status, "Could not do that")
+    return _error_page(request, user, status, heading, e.message, back)
 
 
 # --------------------------------------------------------------------------- sign-in
@@ -350,9 +353,7 @@ def _alert_action(
     back = f"/alerts/{alert_id}"
     try:
         with _write(request) as db:
-            # The same asset limits as reading the alert.
-            alert_q.get_alert(db, alert_id=alert_id, allowed_assets=user.caller.assets)
-            act(db, user)
+            act(db, user)  # service/actions.py: the API's function, its row lock and asset limits
     except KilterError as e:
         return _failed(request, user, e, back)
     return _after_post(back, done)
@@ -372,7 +373,7 @@ def acknowledge(
 ) -> Response:
     return _alert_action(
         request, alert_id, csrf_token, "acknowledged",
-        lambda db, u: alert_q.acknowledge(db, alert_id=alert_id, actor=u.name, note=_note(note)),
+        lambda db, u: actions.acknowledge_alert(db, caller=u.caller, alert_id=alert_id, note=_note(note)),
     )
 
 
@@ -386,7 +387,7 @@ def close(
 ) -> Response:
     return _alert_action(
         request, alert_id, csrf_token, "closed",
-        lambda db, u: alert_q.close(db, alert_id=alert_id, actor=u.name, outcome=outcome, note=_note(note)),
+        lambda db, u: actions.close_alert(db, caller=u.caller, alert_id=alert_id, outcome=outcome, note=_note(note)),
     )
 
 
@@ -399,7 +400,7 @@ def add_note(
 ) -> Response:
     return _alert_action(
         request, alert_id, csrf_token, "noted",
-        lambda db, u: alert_q.add_note(db, alert_id=alert_id, actor=u.name, note=note),
+        lambda db, u: actions.note_alert(db, caller=u.caller, alert_id=alert_id, note=note),
     )
 
 
@@ -474,15 +475,14 @@ def thresholds_page(
     return _render(request, "thresholds.html", context, user=user)
 
 
-def _asset_action(request: Request, asset_id: str, csrf: str | None, done: str, act: Callable[[Session, WebUser, Any], object]) -> Response:
+def _asset_action(request: Request, asset_id: str, csrf: str | None, done: str, act: Callable[[Session, WebUser], object]) -> Response:
     user, refused = _guard(request, role="operator", csrf=csrf, posting=True)
     if refused is not None or user is None:
         return refused  # type: ignore[return-value]
     back = f"/assets/{asset_id}/thresholds"
     try:
         with _write(request) as db:
-            asset = threshold_q.get_asset(db, asset_id=asset_id)
-            act(db, user, asset)
+            act(db, user)  # service/actions.py: the API's function, under the asset's row lock
     except views.FormValueError as e:
         return _error_page(request, user, 422, "Cannot use that input", str(e), back)
     except KilterError as e:
@@ -499,13 +499,6 @@ def _reason(text: str | None) -> str:
     return reason
 
 
-def _asset_model(request: Request, asset: Any) -> LoadedModel:
-    model = pages.loaded_model(request.app.state.registry, asset.model_id)
-    if model is None:
-        raise Conflict(f"model {asset.model_id!r} of asset {asset.asset_id!r} is not served now, so its settings cannot change")
-    return model
-
-
 @router.post("/assets/{asset_id}/thresholds", response_class=HTMLResponse)
 def apply_threshold(
     request: Request,
@@ -516,16 +509,13 @@ def apply_threshold(
     reason: Annotated[str, Form(max_length=2000)] = "",
     csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None,
 ) -> Response:
-    def act(db: Session, user: WebUser, asset: Any) -> None:
-        why = _reason(reason)
-        model = _asset_model(request, asset)
-        current_rule = threshold_q.rule_of(threshold_q.ensure_initial_version(db, asset=asset, manifest=model.manifest))
+    def propose(current_rule: AlertRule, model: LoadedModel) -> actions.RuleChange:
         inputs = pages.ThresholdInputs("budget" if budget.strip() else "level", warning, critical, budget)
         rule, budget_per_week, origin = pages.proposed_rule(current_rule, inputs, pages.calibration_of(model))
-        threshold_q.set_threshold(
-            db, asset=asset, rule=rule, origin=origin, reason=why, actor=user.name, manifest=model.manifest,
-            budget_per_week=budget_per_week, details={"via": "dashboard"},
-        )
+        return actions.RuleChange(rule=rule, origin=origin, budget_per_week=budget_per_week, details={"via": "dashboard"})
+
+    def act(db: Session, user: WebUser) -> None:
+        actions.change_threshold(db, request.app.state.registry, caller=user.caller, asset_id=asset_id, reason=_reason(reason), propose=propose)
 
     return _asset_action(request, asset_id, csrf_token, "applied", act)
 
@@ -538,10 +528,8 @@ def rollback_threshold(
     reason: Annotated[str, Form(max_length=2000)] = "",
     csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None,
 ) -> Response:
-    def act(db: Session, user: WebUser, asset: Any) -> None:
-        why = _reason(reason)
-        model = _asset_model(request, asset)
-        threshold_q.rollback(db, asset=asset, to_version=version, reason=why, actor=user.name, manifest=model.manifest)
+    def act(db: Session, user: WebUser) -> None:
+        actions.rollback_threshold(db, request.app.state.registry, caller=user.caller, asset_id=asset_id, to_version=version, reason=_reason(reason))
 
     return _asset_action(request, asset_id, csrf_token, "rolled_back", act)
 
@@ -554,9 +542,9 @@ def shelve_asset(
     reason: Annotated[str, Form(max_length=2000)] = "",
     csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None,
 ) -> Response:
-    def act(db: Session, user: WebUser, asset: Any) -> None:
+    def act(db: Session, user: WebUser) -> None:
         now = datetime.now(timezone.utc)
-        threshold_q.shelve(db, asset=asset, until=views.shelve_until(hours, now), reason=_reason(reason), actor=user.name, now=now)
+        actions.shelve_asset(db, caller=user.caller, asset_id=asset_id, until=views.shelve_until(hours, now), reason=_reason(reason), now=now)
 
     return _asset_action(request, asset_id, csrf_token, "shelved", act)
 
@@ -564,5 +552,5 @@ def shelve_asset(
 @router.post("/assets/{asset_id}/unshelve", response_class=HTMLResponse)
 def unshelve_asset(request: Request, asset_id: str, csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None) -> Response:
     return _asset_action(
-        request, asset_id, csrf_token, "unshelved", lambda db, user, asset: threshold_q.unshelve(db, asset=asset, actor=user.name)
+        request, asset_id, csrf_token, "unshelved", lambda db, user: actions.unshelve_asset(db, caller=user.caller, asset_id=asset_id)
     )

@@ -118,9 +118,14 @@ def test_replay_retries_connection_errors_then_gives_up(tmp_path: Path) -> None:
 
 def test_replay_does_not_retry_a_refused_batch(env) -> None:
     series = {"pump-01": AssetSeries(np.array([1.79e9 + 60 * i for i in range(3)]), np.zeros((3, 5)))}
-    with pytest.raises(ReplayError, match=r"refused the batch \(422\).*missing channel") :
-        replay(url="http://testserver", key=env.keys["machine"], channels=["flow_m3h", "suction_kpa", "discharge_kpa", "current_a", "bearing_temp_c"],
-               series=series, progress=False, client=env.client, sleep=lambda s: pytest.fail("retried a 422"))
+    channels = ["flow_m3h", "suction_kpa", "discharge_kpa", "current_a", "bearing_temp_c"]
+    summary = replay(url="http://testserver", key=env.keys["machine"], channels=channels,
+                     series=series, progress=False, client=env.client, sleep=lambda s: pytest.fail("retried a 422"))
+    assert [(r.status, r.where) for r in summary.refused] == [(422, "asset pump-01 readings 0..2")]
+    assert "missing channel" in summary.refused[0].message and summary.accepted == 0
+    with pytest.raises(ReplayError, match=r"stopping at .*refused the batch \(422\).*missing channel"):
+        replay(url="http://testserver", key=env.keys["machine"], channels=channels, series=series, progress=False,
+               client=env.client, sleep=lambda s: pytest.fail("retried a 422"), stop_on_refusal=True)
 
 
 def test_replay_speed_paces_batches_by_data_time(env) -> None:

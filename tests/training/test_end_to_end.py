@@ -76,6 +76,11 @@ def test_train_writes_a_complete_valid_model_folder(trained: dict) -> None:
     assert m.channel_names == list(demo_data.CHANNELS)
     assert m.training.excluded_periods == len(PLAN) and m.training.assets == ["pump-01", "pump-02", "pump-03"]
     assert m.validation.onnx_score_rel_error <= 1e-4
+    # Plausible limits from the training run: every value the trainer read lies inside them.
+    values = np.concatenate([log.values for log in read_logs(trained["readings"]).assets.values()])
+    assert m.plausible.source == "training"
+    inside = (values >= np.asarray(m.plausible.low)) & (values <= np.asarray(m.plausible.high))
+    assert np.all(inside | np.isnan(values))
     report = folder / "report"
     assert {"report.json", "report.md", "loss.png", "calibration.png", "example_1.png"} <= {p.name for p in report.iterdir()}
     figures = json.loads((report / "report.json").read_text())
