@@ -48,7 +48,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
     m.add_argument("--merge", choices=("concat", "sum", "multiply", "average"), default=_M.merge, help=f"how bidirectional layers merge directions (default {_M.merge})")
     m.add_argument("--no-bidirectional", action="store_true", help="unidirectional LSTM layers")
     m.add_argument("--dropout", type=float, default=_M.dropout, help=f"between stacked layers (default {_M.dropout:g})")
-    m.add_argument("--score", choices=("mean_squared", "mahalanobis"), default=_M.score, help=f"window score (default {_M.score})")
+    m.add_argument("--score", choices=("mean_squared", "mahalanobis", "mahalanobis_bias"), default=_M.score, help=f"window score (default {_M.score})")
 
     f = p.add_argument_group("fit")
     f.add_argument("--epochs", type=int, default=_F.epochs, help=f"at most this many epochs (default {_F.epochs})")

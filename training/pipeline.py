@@ -203,7 +203,7 @@ def train_logs(
         on_epoch=lambda e, tr, va: log(f"epoch {e}: train loss {tr:.5f}, validation loss {va:.5f}"),
     )
     log(f"fit: {result.epochs_run} epochs in {result.seconds:.0f} s, kept epoch {result.best_epoch}")
-    if mc.score == "mahalanobis":
+    if mc.score in ("mahalanobis", "mahalanobis_bias"):
         steps = fit_mahalanobis(model, parts["validation"], mc)
         log(f"Mahalanobis error statistics fitted on {steps} validation steps")
     val_idx = even_subset(len(parts["validation"]), fc.max_validation_windows)

@@ -111,15 +111,20 @@ def test_kilter_train_on_5s_data_picks_a_5s_grid_unasked(tmp_path: Path) -> None
     rows = ["timestamp,asset," + ",".join(CHANNELS)]
     for i, asset in enumerate(("skid-1", "skid-2")):
         t, v = skid(5.0, 36.0, seed=i, jitter_s=0.3)
+        if asset == "skid-2":  # an invented overheating, labelled in --events for the check only
+            hot = (t >= START_S + 30 * 3600) & (t < START_S + 32 * 3600)
+            v[hot, 2] += 6.0
         stamps = np.datetime_as_string(np.round(t * 1000).astype("datetime64[ms]"), unit="ms", timezone="UTC")
         rows += [f"{s},{asset}," + ",".join(f"{x:.3f}" for x in row) for s, row in zip(stamps, v, strict=True)]
     data = tmp_path / "skid.csv"
     data.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    events = tmp_path / "events.csv"
+    events.write_text("asset,start,end,kind\nskid-2,2026-09-22T20:13:20Z,2026-09-22T22:13:20Z,overheating\n", encoding="utf-8")
     out, err = io.StringIO(), io.StringIO()
     args = ["--hidden", "8", "--latent", "2", "--layers", "1", "--decoder-layers", "1", "--epochs", "1",
             "--epoch-windows", "128", "--threads", "1", "--version", "v5s", "--model-id", "skid"]  # fmt: skip
     with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        code = kilter(["train", "--data", str(data), "--out", str(tmp_path / "models"), *args])
+        code = kilter(["train", "--data", str(data), "--out", str(tmp_path / "models"), "--events", str(events), *args])
     assert code == 0, err.getvalue()
     m = load_manifest(Path(out.getvalue().strip()))
     assert m.sample_period_s == 5.0
@@ -131,6 +136,8 @@ def test_kilter_train_on_5s_data_picks_a_5s_grid_unasked(tmp_path: Path) -> None
     assert check["baseline_as_good"] is True and "--latent" in check["advice"]
     assert "WARNING: a linear PCA baseline does as well as the LSTM" in err.getvalue()
     assert m.validation.extra["baseline_as_good"] == 1.0
+    assert m.training.excluded_periods == 0  # --events are checked against, not excluded or fitted on
+    assert check["separation"]["fault_windows"] > 0 and 0.0 <= check["separation"]["pca_roc_auc"] <= 1.0
     assert m.validation.extra["calibration_mse_pca"] == pytest.approx(check["parts"][1]["pca_mse"])
     report = (Path(out.getvalue().strip()) / "report" / "report.md").read_text()
     assert "## Against a PCA baseline" in report and "**WARNING" in report
