@@ -9,7 +9,7 @@
       -> decoder: stacked LSTM layers, many-to-many                       (B, W, D)
       -> per-step Linear head, one output per channel: z_hat              (B, W, C)
       -> reconstruction = z_hat * scale + centre (raw), residual = (z - z_hat)^2 (scaled)
-      -> score (B,): mean_squared or mahalanobis (ScoreSpec in service/manifest.py)
+      -> score (B,): mean_squared, mahalanobis or mahalanobis_bias (ScoreSpec in service/manifest.py)
 
 The exported ONNX graph is exactly this forward pass (DESIGN.md "The model contract").
 
