@@ -40,7 +40,7 @@ def child(csv_path: str, events_path: str, window: int) -> None:
     import numpy as np
 
     from training.config import DataConfig
-    from training.dataset import PARTS, prepare_with
+    from training.dataset import PARTS, prepare_with, resolve_data_config
     from training.logs import read_events, read_logs
 
     cfg = replace(DataConfig(), window=window)
@@ -50,6 +50,7 @@ def child(csv_path: str, events_path: str, window: int) -> None:
     out["read_s"] = time.perf_counter() - t
     out["rss_read"] = vm_hwm_bytes()
     t = time.perf_counter()
+    cfg = resolve_data_config(logs, cfg)  # grid steps from the data
     prep = prepare_with(logs, cfg, read_events(events_path))
     out["prepare_s"] = time.perf_counter() - t
     out["rss_prepared"] = vm_hwm_bytes()

@@ -45,7 +45,7 @@ def main() -> int:
 
     from training import demo_data
     from training.config import DataConfig, FitConfig, ModelConfig
-    from training.dataset import prepare_with
+    from training.dataset import prepare_with, resolve_data_config
     from training.fit import fit, make_model
     from training.logs import Event, from_arrays
 
@@ -57,7 +57,7 @@ def main() -> int:
     events = [Event(e.asset, e.start_s, e.end_s, e.kind) for e in demo.events]
     del demo
     after_logs, _ = rss_mib()
-    d = DataConfig()
+    d = resolve_data_config(logs, DataConfig())  # grid steps from the data (60 s demo: window 60, stride 10)
     t0 = time.perf_counter()
     prepared = prepare_with(logs, d, events)
     t_prep = time.perf_counter() - t0

@@ -25,7 +25,7 @@ INPUT_NAME = "readings"
 OUTPUT_NAMES = ("reconstruction", "residual", "score")
 
 MergeMode = Literal["concat", "sum", "multiply", "average"]
-ScoreMethod = Literal["mean_squared", "mahalanobis"]
+ScoreMethod = Literal["mean_squared", "mahalanobis", "mahalanobis_bias"]
 ThresholdMethod = Literal["empirical", "pot", "manual"]
 
 
@@ -138,11 +138,18 @@ class ScoreSpec(_Strict):
     mean_squared: mean over steps and channels of the squared error in scaled units.
     mahalanobis: per step d_t = (e_t - mu)^T Sigma^-1 (e_t - mu) with e_t = |x_t - x_hat_t|
     in scaled units (Malhotra et al. 2016), then the mean over steps.
+    mahalanobis_bias: the mahalanobis score plus b^T S^-1 b with b = the window's mean signed
+    error (x - x_hat, scaled units) less its normal mean, S its covariance over normal
+    windows: a slow drift or wear shifts the error one way for the whole window, which the
+    per-step term dilutes among the step-to-step noise (issue 13).
     """
 
     method: ScoreMethod = "mean_squared"
     error_mean: list[float] | None = None
     error_precision: list[list[float]] | None = None
+    # issue 13, mahalanobis_bias only: normal mean and precision of the window's mean signed error.
+    bias_mean: list[float] | None = None
+    bias_precision: list[list[float]] | None = None
 
 
 class CalibrationSummary(_Strict):
@@ -258,11 +265,16 @@ class Manifest(_Strict):
         for name, c, lo, hi in zip(names, self.scaler.center, self.plausible.low, self.plausible.high):
             if not lo <= c <= hi:
                 raise ValueError(f"plausible limits of {name!r} ({lo} .. {hi}) must contain the scaler centre {c}")
-        if self.score.method == "mahalanobis":
+        if self.score.method in ("mahalanobis", "mahalanobis_bias"):
             if self.score.error_mean is None or self.score.error_precision is None:
                 raise ValueError("mahalanobis score needs error_mean and error_precision")
             if len(self.score.error_mean) != n or len(self.score.error_precision) != n:
                 raise ValueError(f"mahalanobis parameters must be {n}-dimensional")
+        if self.score.method == "mahalanobis_bias":
+            if self.score.bias_mean is None or self.score.bias_precision is None:
+                raise ValueError("mahalanobis_bias score needs bias_mean and bias_precision")
+            if len(self.score.bias_mean) != n or len(self.score.bias_precision) != n:
+                raise ValueError(f"mahalanobis_bias parameters must be {n}-dimensional")
         return self
 
     @property

@@ -71,6 +71,24 @@ def fit_mahalanobis(model: Reconstructor, validation, config: ModelConfig, limit
     errors = [np.sqrt(resid).reshape(-1, resid.shape[-1]) for _, _, resid, _ in model_outputs(model, validation, idx)]
     stats = error_statistics(np.concatenate(errors), config.ridge)
     model.set_mahalanobis(stats.mean, stats.precision)
+    if config.score == "mahalanobis_bias":
+        fit_window_bias(model, validation, idx, config)
+    return stats.steps
+
+
+def fit_window_bias(model: Reconstructor, validation, idx: np.ndarray, config: ModelConfig) -> int:  # type: ignore[no-untyped-def]
+    """Fit mean and precision of each normal validation window's mean signed error (issue 13); returns windows used.
+
+    The signed error z - z_hat is recovered from the model's own outputs: reconstruction is
+    z_hat in raw units, so z - z_hat = (x - reconstruction) / scale.
+    """
+    scale = model.scale.numpy().astype(np.float64)
+    biases = []
+    for part, recon, _, _ in model_outputs(model, validation, idx):
+        x = np.asarray(validation.gather(part), dtype=np.float64)
+        biases.append(((x - recon) / scale).mean(axis=1))  # (B, C)
+    stats = error_statistics(np.concatenate(biases), config.ridge)
+    model.set_bias(stats.mean, stats.precision)
     return stats.steps
 
 

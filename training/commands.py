@@ -26,15 +26,18 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
     p.add_argument("--data", required=True, type=Path, metavar="FILE", help="readings, CSV or Parquet, wide or long layout")
     p.add_argument("--out", required=True, type=Path, metavar="MODEL_DIR", help="models folder to write into")
     p.add_argument("--exclude", type=Path, metavar="EVENTS.csv", help="known fault/maintenance periods (asset,start,end,kind) kept out of training and calibration")
+    p.add_argument("--events", type=Path, metavar="EVENTS.csv", help="labelled faults to check the model against (and the PCA baseline beside it), never fitted on; default: the faults in --exclude")
     p.add_argument("--tz", metavar="ZONE", help="IANA time zone of timestamps written without an offset (otherwise they are refused)")
     p.add_argument("--units", metavar="CH=UNIT,...", help="units of channels whose name does not say it, e.g. speed=rpm,level=m")
 
     g = p.add_argument_group("windows and grid")
-    g.add_argument("--period-s", type=float, default=_D.period_s, help=f"sample grid period in seconds (default {_D.period_s:g})")
-    g.add_argument("--window", type=int, default=_D.window, help=f"grid points per window (default {_D.window})")
-    g.add_argument("--stride", type=int, default=_D.stride, help=f"serving stride in grid points (default {_D.stride})")
-    g.add_argument("--train-stride", type=int, default=_D.train_stride, help=f"stride of training windows (default {_D.train_stride})")
-    g.add_argument("--max-fill-steps", type=int, default=_D.max_fill_steps, help=f"longest gap forward-filled, in grid points (default {_D.max_fill_steps})")
+    # Defaults stated in time, converted to grid points from the data's own interval (issue 13).
+    g.add_argument("--period-s", type=float, default=_D.period_s, help="sample grid period in seconds (default: the data's median sampling interval; refused when assets disagree widely)")
+    g.add_argument("--window-s", type=float, default=_D.window_s, help=f"window span in seconds when --window is not given (default {_D.window_s:g}: one hour; converted to 24-240 grid points)")
+    g.add_argument("--window", type=int, default=_D.window, help="grid points per window (default: --window-s / period)")
+    g.add_argument("--stride", type=int, default=_D.stride, help="serving stride in grid points (default: a sixth of the window)")
+    g.add_argument("--train-stride", type=int, default=_D.train_stride, help="stride of training windows (default: a thirtieth of the window)")
+    g.add_argument("--max-fill-steps", type=int, default=_D.max_fill_steps, help=f"longest gap forward-filled, in grid points (default: {_D.max_fill_s / 60:g} min of points)")
     g.add_argument("--margin-s", type=float, default=_D.margin_s, help=f"widen excluded periods by this on both sides (default {_D.margin_s:g})")
 
     m = p.add_argument_group("model")
@@ -45,7 +48,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
     m.add_argument("--merge", choices=("concat", "sum", "multiply", "average"), default=_M.merge, help=f"how bidirectional layers merge directions (default {_M.merge})")
     m.add_argument("--no-bidirectional", action="store_true", help="unidirectional LSTM layers")
     m.add_argument("--dropout", type=float, default=_M.dropout, help=f"between stacked layers (default {_M.dropout:g})")
-    m.add_argument("--score", choices=("mean_squared", "mahalanobis"), default=_M.score, help=f"window score (default {_M.score})")
+    m.add_argument("--score", choices=("mean_squared", "mahalanobis", "mahalanobis_bias"), default=_M.score, help=f"window score (default {_M.score})")
 
     f = p.add_argument_group("fit")
     f.add_argument("--epochs", type=int, default=_F.epochs, help=f"at most this many epochs (default {_F.epochs})")
@@ -74,6 +77,7 @@ def config_from_args(args: argparse.Namespace):  # type: ignore[no-untyped-def]
     try:
         data = DataConfig(
             period_s=args.period_s,
+            window_s=args.window_s,
             window=args.window,
             stride=args.stride,
             train_stride=args.train_stride,
@@ -110,7 +114,8 @@ def config_from_args(args: argparse.Namespace):  # type: ignore[no-untyped-def]
 def check_config(data: DataConfig, model: ModelConfig, fit: FitConfig, cal: CalibrationConfig) -> None:
     """Raise ValueError naming the option when a setting is out of range."""
     positive = {
-        "--period-s": data.period_s,
+        "--period-s": data.period_s if data.period_s is not None else 1.0,
+        "--window-s": data.window_s,
         "--hidden": model.hidden,
         "--latent": model.latent,
         "--layers": model.layers,
@@ -120,17 +125,17 @@ def check_config(data: DataConfig, model: ModelConfig, fit: FitConfig, cal: Cali
         "--lr": fit.lr,
         "--patience": fit.patience,
         "--threads": fit.threads,
-        "--stride": data.stride,
-        "--train-stride": data.train_stride,
+        "--stride": data.stride if data.stride is not None else 1,
+        "--train-stride": data.train_stride if data.train_stride is not None else 1,
         "--warning-budget": cal.warning_budget_per_week,
         "--critical-budget": cal.critical_budget_per_week,
     }
     for name, value in positive.items():
         if not value > 0:
             raise ValueError(f"{name} must be > 0, got {value}")
-    if data.window < 2:
+    if data.window is not None and data.window < 2:
         raise ValueError(f"--window must be at least 2 grid points, got {data.window}")
-    if data.max_fill_steps < 0 or data.margin_s < 0:
+    if (data.max_fill_steps is not None and data.max_fill_steps < 0) or data.margin_s < 0:
         raise ValueError("--max-fill-steps and --margin-s must be >= 0")
     if not 0 <= model.dropout < 1:
         raise ValueError(f"--dropout must be in [0, 1), got {model.dropout}")
@@ -158,7 +163,7 @@ def run_train(args: argparse.Namespace) -> int:
     from training.pipeline import train_file
 
     try:
-        outcome = train_file(args.data, args.out, config, exclude=args.exclude, tz=args.tz, units=units)
+        outcome = train_file(args.data, args.out, config, exclude=args.exclude, tz=args.tz, units=units, check_events=args.events)
     except (DataError, TimestampError, ExportError, FileNotFoundError, IsADirectoryError) as e:
         raise CommandError(f"train: {e}") from e
     except ValueError as e:

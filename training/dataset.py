@@ -17,8 +17,9 @@ from __future__ import annotations
 
 import hashlib
 import json
-from collections.abc import Sequence
-from dataclasses import dataclass, field
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -337,8 +338,114 @@ def prepare(
     )
 
 
+# ------------------------------------------------------------------ grid and window defaults from the data
+
+# Bounds on a window derived from `window_s`: fewer than 24 points give the LSTM too little
+# shape to learn (a 10-minute log's hour would be 6); more than 240 (4x the bundled model's
+# 60) make training and scoring slow (the LSTM's cost grows with the steps) for little gain.
+WINDOW_STEPS_MIN = 24
+WINDOW_STEPS_MAX = 240
+# Assets whose median sampling intervals differ by more than this factor cannot share one
+# grid chosen from the data: the coarse ones would be filled, or the fine ones averaged.
+PERIOD_SPREAD_MAX = 1.5
+
+
+def median_interval_s(times_s: np.ndarray) -> float | None:
+    """Median time between consecutive readings (seconds), or None with fewer than two readings."""
+    t = np.asarray(times_s, dtype=np.float64)
+    if len(t) < 2:
+        return None
+    return float(np.median(np.diff(t)))
+
+
+def nice_period(period_s: float) -> float:
+    """A jittery median such as 4.98 s read as 5 s: whole seconds within 2 %, else 3 significant digits."""
+    whole = round(period_s)
+    if whole >= 1 and abs(period_s - whole) <= 0.02 * period_s:
+        return float(whole)
+    return float(f"{period_s:.3g}")
+
+
+def data_period_s(logs: LogSet) -> float:
+    """The grid period the data ask for: the assets' median sampling interval.
+
+    Raises DataError when no asset has two readings, or when the assets' own medians
+    differ by more than PERIOD_SPREAD_MAX (naming the fastest and slowest asset).
+    """
+    per_asset = {name: median_interval_s(a.times_s) for name, a in logs.assets.items()}
+    known = {k: v for k, v in per_asset.items() if v is not None and v > 0}
+    if not known:
+        raise DataError(
+            f"{logs.source}: no asset has two readings, so the sampling interval cannot be read from the data; "
+            "give --period-s SECONDS"
+        )
+    fast = min(known, key=known.__getitem__)
+    slow = max(known, key=known.__getitem__)
+    if known[slow] > PERIOD_SPREAD_MAX * known[fast]:
+        raise DataError(
+            f"{logs.source}: the assets log at different intervals (asset {fast} every {known[fast]:g} s, "
+            f"asset {slow} every {known[slow]:g} s, medians), so one grid period cannot be chosen from the data; "
+            f"give --period-s SECONDS (e.g. --period-s {nice_period(known[slow]):g} to put every asset on the "
+            "coarsest interval), or train the groups separately"
+        )
+    return nice_period(float(np.median(list(known.values()))))
+
+
+def _span(seconds: float) -> str:
+    if seconds >= 3600 and seconds % 360 == 0:
+        return f"{seconds / 3600:g} h"
+    if seconds >= 60:
+        return f"{seconds / 60:.3g} min"
+    return f"{seconds:.3g} s"
+
+
+def resolve_data_config(logs: LogSet, data: DataConfig, log: Callable[[str], None] | None = None) -> DataConfig:
+    """Fill the unset grid settings of `data` from the logs; say what was chosen through `log`.
+
+    period: the data's median sampling interval (data_period_s) unless given. window: the
+    given steps, else window_s / period rounded and clamped to [WINDOW_STEPS_MIN,
+    WINDOW_STEPS_MAX] (a clamp is reported). Strides: the given steps, else their fraction
+    of the window (at least 1). Gap fill: the given steps, else max_fill_s / period (at
+    least 1 point). A config already resolved comes back unchanged (nothing logged).
+    """
+    if data.resolved:
+        return data
+    say = log or (lambda _m: None)
+    notes: list[str] = []
+    if data.period_s is None:
+        period = data_period_s(logs)
+        notes.append(f"grid period {period:g} s: the data's median sampling interval (override with --period-s)")
+    else:
+        period = float(data.period_s)
+    if not period > 0 or not math.isfinite(period):
+        raise DataError(f"the grid period must be a positive number of seconds, got {period}")
+    window = data.window
+    if window is None:
+        wanted = max(int(round(data.window_s / period)), 2)
+        window = min(max(wanted, WINDOW_STEPS_MIN), WINDOW_STEPS_MAX)
+        if window != wanted:
+            bound = "at least" if window > wanted else "at most"
+            notes.append(
+                f"window: {_span(data.window_s)} at {period:g} s would be {wanted} grid points; clamped to {window} "
+                f"({_span(window * period)}), since a window takes {bound} {window} points "
+                f"({WINDOW_STEPS_MIN}-{WINDOW_STEPS_MAX}); give --window POINTS or --window-s, "
+                + ("or a coarser --period-s for a longer context" if window < wanted else "or a finer --period-s")
+            )
+    stride = data.stride if data.stride is not None else max(int(round(window * data.stride_frac)), 1)
+    train_stride = data.train_stride if data.train_stride is not None else max(int(round(window * data.train_stride_frac)), 1)
+    fill = data.max_fill_steps if data.max_fill_steps is not None else max(int(data.max_fill_s // period), 1)
+    notes.append(
+        f"window {window} points ({_span(window * period)}), stride {stride} ({_span(stride * period)}), "
+        f"training stride {train_stride}, gaps filled up to {fill} points ({_span(fill * period)})"
+    )
+    for note in notes:
+        say(note)
+    return replace(data, period_s=period, window=int(window), stride=int(stride), train_stride=int(train_stride), max_fill_steps=int(fill))
+
+
 def prepare_with(logs: LogSet, data: DataConfig, exclude: Sequence[Event] = ()) -> Prepared:
     """`prepare` with the grid, window and split settings of a DataConfig (trainer, evaluator, benches)."""
+    data = resolve_data_config(logs, data)
     return prepare(
         logs,
         period_s=data.period_s,

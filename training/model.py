@@ -9,7 +9,7 @@
       -> decoder: stacked LSTM layers, many-to-many                       (B, W, D)
       -> per-step Linear head, one output per channel: z_hat              (B, W, C)
       -> reconstruction = z_hat * scale + centre (raw), residual = (z - z_hat)^2 (scaled)
-      -> score (B,): mean_squared or mahalanobis (ScoreSpec in service/manifest.py)
+      -> score (B,): mean_squared, mahalanobis or mahalanobis_bias (ScoreSpec in service/manifest.py)
 
 The exported ONNX graph is exactly this forward pass (DESIGN.md "The model contract").
 
@@ -159,6 +159,8 @@ class Reconstructor(nn.Module):
         self.score_method = config.score
         self.register_buffer("error_mean", torch.zeros(n_channels))
         self.register_buffer("error_precision", torch.eye(n_channels))
+        self.register_buffer("bias_mean", torch.zeros(n_channels))  # mahalanobis_bias only
+        self.register_buffer("bias_precision", torch.eye(n_channels))
 
     def reconstruct_scaled(self, readings: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """readings (B, W, C) raw -> (z, z_hat), both (B, W, C) in scaled units."""
@@ -175,10 +177,13 @@ class Reconstructor(nn.Module):
         reconstruction = z_hat * self.scale + self.center  # (B, W, C) raw units
         diff = z - z_hat  # (B, W, C)
         residual = diff * diff  # (B, W, C) squared error, scaled units
-        if self.score_method == "mahalanobis":
+        if self.score_method in ("mahalanobis", "mahalanobis_bias"):
             d = torch.abs(diff) - self.error_mean  # (B, W, C): e_t - mu
             per_step = (torch.matmul(d, self.error_precision) * d).sum(dim=-1)  # (B, W)
             score = per_step.mean(dim=1)  # (B,)
+            if self.score_method == "mahalanobis_bias":
+                b = diff.mean(dim=1) - self.bias_mean  # (B, C): the window's signed error bias
+                score = score + (torch.matmul(b, self.bias_precision) * b).sum(dim=-1)  # (B,)
         else:
             score = residual.mean(dim=(1, 2))  # (B,)
         return reconstruction, residual, score
@@ -188,7 +193,21 @@ class Reconstructor(nn.Module):
         self.error_precision.copy_(torch.as_tensor(error_precision, dtype=torch.float32))
         self.score_method = "mahalanobis"
 
+    def set_bias(self, bias_mean: np.ndarray, bias_precision: np.ndarray) -> None:
+        """Add the window-bias term (method mahalanobis_bias); needs set_mahalanobis first."""
+        self.bias_mean.copy_(torch.as_tensor(bias_mean, dtype=torch.float32))
+        self.bias_precision.copy_(torch.as_tensor(bias_precision, dtype=torch.float32))
+        self.score_method = "mahalanobis_bias"
+
     def score_spec(self) -> ScoreSpec:
+        if self.score_method == "mahalanobis_bias":
+            return ScoreSpec(
+                method="mahalanobis_bias",
+                error_mean=[float(v) for v in self.error_mean.tolist()],
+                error_precision=[[float(v) for v in row] for row in self.error_precision.tolist()],
+                bias_mean=[float(v) for v in self.bias_mean.tolist()],
+                bias_precision=[[float(v) for v in row] for row in self.bias_precision.tolist()],
+            )
         if self.score_method == "mahalanobis":
             return ScoreSpec(
                 method="mahalanobis",
@@ -220,7 +239,7 @@ def flops_per_window(config: ModelConfig, n_channels: int, window: int) -> int:
     dec, dec_out = lstm_stack_flops(config.latent, config.decoder_specs(), window)
     latent = 2 * enc_out * config.latent
     head = 2 * window * dec_out * n_channels
-    score = 2 * window * n_channels * n_channels if config.score == "mahalanobis" else 0
+    score = 2 * window * n_channels * n_channels if config.score in ("mahalanobis", "mahalanobis_bias") else 0
     return int(enc + dec + latent + head + score)
 
 

@@ -18,9 +18,10 @@ import torch
 
 from service import grid as G
 from service.manifest import Channel, GapPolicy, Manifest, Scaler, TrainingSummary, ValidationFigures, plausible_limits
+from training.baseline_check import baseline_check
 from training.calibrate import Calibration, calibrate, fit_mahalanobis, model_outputs, score_windows
 from training.config import TrainConfig
-from training.dataset import ArrayWindows, Prepared, prepare_with
+from training.dataset import ArrayWindows, Prepared, prepare_with, resolve_data_config
 from training.export import Parity, write_model_folder
 from training.fit import FitResult, even_subset, evaluate_loss, fit, make_model
 from training.logs import Event, LogSet, read_events, read_logs
@@ -68,7 +69,7 @@ def event_windows(
     logs: LogSet, events: Sequence[Event], config: TrainConfig, limit: int = MAX_EVENT_WINDOWS
 ) -> EventWindows | None:
     """Serving-stride windows that touch a labelled fault (maintenance ignored), or None if none."""
-    d = config.data
+    d = resolve_data_config(logs, config.data)
     faults = [e for e in events if e.kind != "maintenance"]
     cut, kinds, assets = [], [], []
     for name, log in logs.assets.items():
@@ -174,8 +175,16 @@ def train_logs(
     log: Log = stderr_log,
     overwrite: bool = False,
     created_at: datetime | None = None,
+    check_events: Sequence[Event] | None = None,
 ) -> TrainOutcome:
-    """Prepare, fit, calibrate and export; returns where the model folder was written."""
+    """Prepare, fit, calibrate and export; returns where the model folder was written.
+
+    `events` are kept out of training and calibration; `check_events` (default: `events`)
+    are the labelled faults the separation figures and the baseline check score, never fitted on.
+    """
+    # Grid period, window and strides left unset come from the data (issue 13); from here
+    # on the config holds numbers only, so the manifest and report record what was used.
+    config = replace(config, data=resolve_data_config(logs, config.data, log))
     d, mc, fc = config.data, config.model, config.fit
     prepared = prepare_with(logs, d, events)
     parts = prepared.parts
@@ -194,7 +203,7 @@ def train_logs(
         on_epoch=lambda e, tr, va: log(f"epoch {e}: train loss {tr:.5f}, validation loss {va:.5f}"),
     )
     log(f"fit: {result.epochs_run} epochs in {result.seconds:.0f} s, kept epoch {result.best_epoch}")
-    if mc.score == "mahalanobis":
+    if mc.score in ("mahalanobis", "mahalanobis_bias"):
         steps = fit_mahalanobis(model, parts["validation"], mc)
         log(f"Mahalanobis error statistics fitted on {steps} validation steps")
     val_idx = even_subset(len(parts["validation"]), fc.max_validation_windows)
@@ -213,7 +222,8 @@ def train_logs(
         "calibration_warning_alerts_per_week": cal.replayed_per_week("warning"),
         "calibration_critical_alerts_per_week": cal.replayed_per_week("critical"),
     }
-    faulty = event_windows(logs, events, config) if events else None
+    checked = events if check_events is None else check_events
+    faulty = event_windows(logs, checked, config) if checked else None
     fault_scores = np.empty(0)
     if faulty is not None:
         sep, fault_scores = separation(model, cal_scores, faulty)
@@ -222,6 +232,22 @@ def train_logs(
             f"labelled fault windows vs normal calibration windows: median ratio "
             f"{sep['fault_over_normal_median']:.2f}, ROC-AUC {sep['fault_vs_normal_roc_auc']:.3f}"
         )
+    # The honest check (issue 13): PCA fitted on the same training windows, compared on
+    # held-out windows and, when known, the labelled faults (training/baseline_check.py).
+    check = baseline_check(
+        model,
+        parts["train"],
+        {"validation": parts["validation"], "calibration": parts["calibration"]},
+        prepared.scaler_center,
+        prepared.scaler_scale,
+        normal_scores=cal_scores,
+        fault_windows=None if faulty is None else faulty.windows,
+        fault_scores=fault_scores,
+        seed=fc.seed,
+    )
+    for line in check.lines():
+        log(line)
+    figures.update(check.figures())
 
     version = config.version or utc_stamp()
     created = (created_at or datetime.now(timezone.utc)).astimezone(timezone.utc)
@@ -284,6 +310,7 @@ def train_logs(
         examples=examples,
         figures=figures,
         settings=config.as_dict(),
+        baseline_check=check,
     )
     real = parts["validation"].gather(even_subset(len(parts["validation"]), PARITY_REAL_WINDOWS))
     manifest, parity = write_model_folder(
@@ -312,10 +339,14 @@ def train_file(
     log: Log = stderr_log,
     overwrite: bool = False,
     created_at: datetime | None = None,
+    check_events: Path | None = None,
 ) -> TrainOutcome:
-    """`kilter train`: read the log file (and events to exclude), then train_logs."""
+    """`kilter train`: read the log file (and events to exclude, events to check on), then train_logs."""
     torch.set_num_threads(max(int(config.fit.threads), 1))
     logs = read_logs(data, tz=tz, units=units)
     events = read_events(exclude, tz=tz) if exclude is not None else []
+    checked = read_events(check_events, tz=tz) if check_events is not None else None
     log(f"read {logs.n_rows} rows of {len(logs.assets)} assets, {len(logs.channels)} channels from {data}")
-    return train_logs(logs, events, out_dir, config, progress=progress, log=log, overwrite=overwrite, created_at=created_at)
+    return train_logs(
+        logs, events, out_dir, config, progress=progress, log=log, overwrite=overwrite, created_at=created_at, check_events=checked
+    )

@@ -41,6 +41,7 @@ class ReportInputs:
     examples: list[Example] = field(default_factory=list)
     figures: dict[str, float] = field(default_factory=dict)  # extra measured figures
     settings: dict = field(default_factory=dict)  # the run's TrainConfig as a dict
+    baseline_check: object | None = None  # training.baseline_check.BaselineCheck (issue 13)
 
 
 def _plt():  # type: ignore[no-untyped-def]
@@ -139,6 +140,7 @@ def write_report(folder: Path, manifest: Manifest, inputs: ReportInputs) -> Path
         "figures": inputs.figures,
         "examples": [{"file": name, "title": ex.title, "score": ex.score} for name, ex in example_files],
         "settings": inputs.settings,
+        "baseline_check": inputs.baseline_check.as_dict() if inputs.baseline_check is not None else None,  # type: ignore[attr-defined]
     }
     (out / "report.json").write_text(json.dumps(figures, indent=2, default=float) + "\n", encoding="utf-8")
     (out / "report.md").write_text(_markdown(manifest, inputs, example_files), encoding="utf-8")
@@ -190,6 +192,7 @@ def _markdown(manifest: Manifest, inputs: ReportInputs, example_files: list[tupl
         "![calibration](calibration.png)",
         "",
     ]
+    lines += _baseline_section(inputs)
     if inputs.figures:
         lines += ["## Measured figures", "", "| figure | value |", "|---|---|"]
         lines += [f"| {k} | {v:.4g} |" for k, v in inputs.figures.items()]
@@ -203,3 +206,24 @@ def _markdown(manifest: Manifest, inputs: ReportInputs, example_files: list[tupl
         "",
     ]
     return "\n".join(lines)
+
+
+def _baseline_section(inputs: ReportInputs) -> list[str]:
+    """The model against the PCA baseline on held-out windows (training/baseline_check.py)."""
+    check = inputs.baseline_check
+    if check is None:
+        return []
+    head, *rest = check.lines()  # type: ignore[attr-defined]
+    verdict = rest[-1].strip()
+    lines = ["## Against a PCA baseline", "", head[len("baseline check: "):].capitalize() + ".", ""]
+    lines += ["| windows | model | PCA | PCA as good or better |", "|---|---|---|---|"]
+    for p in check.parts:  # type: ignore[attr-defined]
+        lines.append(f"| {p.part}: mean squared error ({p.windows}) | {p.model_mse:.4g} | {p.pca_mse:.4g} | {'yes' if p.baseline_as_good else 'no'} |")
+    s = check.separation  # type: ignore[attr-defined]
+    if s is not None:
+        lines.append(
+            f"| labelled faults: ROC-AUC ({s.fault_windows} fault, {s.normal_windows} normal) | {s.model_roc_auc:.3f} | "
+            f"{s.pca_roc_auc:.3f} | {'yes' if s.baseline_as_good else 'no'} |"
+        )
+    lines += ["", ("**" + verdict + "**") if check.baseline_as_good else verdict, ""]  # type: ignore[attr-defined]
+    return lines

@@ -54,11 +54,14 @@ def tiny_model(
         hidden=5, latent=2, layers=2, decoder_layers=decoder_layers, merge=merge, bidirectional=bidirectional, score=score
     )
     model = Reconstructor(cfg, C, W, CENTER, SCALE).eval()
-    if score == "mahalanobis":
+    if score in ("mahalanobis", "mahalanobis_bias"):
         with torch.no_grad():
             z, z_hat = model.reconstruct_scaled(torch.from_numpy(real_like(200, 9)))
         stats = error_statistics(torch.abs(z - z_hat).reshape(-1, C).numpy(), ridge=1e-3)
         model.set_mahalanobis(stats.mean, stats.precision)
+        if score == "mahalanobis_bias":
+            bias = error_statistics((z - z_hat).mean(dim=1).numpy(), ridge=1e-3)
+            model.set_bias(bias.mean, bias.precision)
     return model
 
 
@@ -120,6 +123,7 @@ CAL = CalibrationScores(
         ("concat", True, "mahalanobis", None),
         ("concat", True, "mahalanobis", 1),  # the bundled model's shape: two encoder layers, one decoder layer
         ("average", False, "mahalanobis", 1),
+        ("concat", True, "mahalanobis_bias", 1),  # issue 13: the per-step term plus the window's error bias
     ],
 )
 def test_onnx_runtime_matches_torch_on_every_output_element(
