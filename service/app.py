@@ -230,7 +230,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         db = open_database(settings)
         try:
-            app.state.registry = load_registry(settings)
+            registry = load_registry(settings)
+            # Serve the versions the database binds (the cluster's choice), not only what is on disk.
+            await anyio.to_thread.run_sync(registry.attach, db)
+            app.state.registry = registry
         except Exception:
             db.dispose()
             raise

@@ -71,6 +71,13 @@ class Unavailable(KilterError):
     status, code = 503, "unavailable"
 
 
+class ModelSwitched(Unavailable):
+    """The cluster switched an asset's model while this process scored a batch with the old
+    one; nothing was stored and sending the batch again is safe (issue 11)."""
+
+    code = "model_switched"
+
+
 class ModelError(KilterError):
     """A model folder failed validation (load, names/shapes, sha256, self test)."""
 
