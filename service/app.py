@@ -39,6 +39,7 @@ API_ROUTER_MODULES = (
     "service.api.alerts",
     "service.api.thresholds",
     "service.api.models",
+    "service.api.keys",
 )
 WEB_ROUTER_MODULE = "service.web.routes"
 STATIC_DIR = Path(__file__).parent / "web" / "static"

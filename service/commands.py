@@ -1,4 +1,4 @@
-"""The service's subcommands: serve, keys create, db upgrade, replay, demo.
+"""The service's subcommands: serve, keys create|list|revoke|rotate, db upgrade, replay, demo.
 
 Settings come from KILTER_* environment variables or `.env` (service/settings.py).
 `keys create` prints the key alone on one stdout line; everything else goes to stderr.
@@ -28,6 +28,14 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     k.add_argument("--name", required=True, help="who or what holds the key (shown in histories)")
     k.add_argument("--assets", help="machine keys only: comma-separated asset ids the key may post for")
     k.set_defaults(handler=cmd_keys_create)
+    ls = keys_sub.add_parser("list", help="list keys (id, name, role, assets, prefix, created, revoked); keys themselves are never stored")
+    ls.set_defaults(handler=cmd_keys_list)
+    rv = keys_sub.add_parser("revoke", help="revoke a key: its next API request gets 401 and its dashboard sessions end")
+    rv.add_argument("key_id", type=int, help="the key's id (kilter keys list)")
+    rv.set_defaults(handler=cmd_keys_revoke)
+    ro = keys_sub.add_parser("rotate", help="replace a key by a new one with the same name, role and assets; prints the new key alone on stdout")
+    ro.add_argument("key_id", type=int, help="the key's id (kilter keys list)")
+    ro.set_defaults(handler=cmd_keys_rotate)
 
     db = subparsers.add_parser("db", help="database schema")
     db_sub = db.add_subparsers(dest="db_command", metavar="ACTION", required=True)
@@ -118,6 +126,73 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
     print(key)
     scope = f" for assets {', '.join(assets)}" if assets else ""
     print(f"created {args.role} key #{key_id} ({prefix}...) named {args.name!r}{scope}; it is shown only once", file=sys.stderr)
+    return 0
+
+
+def _keys_db():  # noqa: ANN202 - a Database, upgraded when the settings allow
+    from service.db.migrate import upgrade
+    from service.db.session import Database
+
+    settings = _settings()
+    db = Database(settings.database_url, busy_timeout_ms=settings.db_busy_timeout_ms)
+    if settings.auto_upgrade:
+        upgrade(db.engine)
+    return db
+
+
+def cmd_keys_list(args: argparse.Namespace) -> int:
+    from service.db.keys import list_keys
+
+    db = _keys_db()
+    try:
+        with db.session() as s:
+            rows = [(r.id, r.name, r.role, ",".join(r.assets) if r.assets else "*", r.prefix + "...",
+                     r.created_at.strftime("%Y-%m-%dT%H:%M:%SZ"), r.revoked_at.strftime("%Y-%m-%dT%H:%M:%SZ") if r.revoked_at else "-")
+                    for r in list_keys(s)]
+    finally:
+        db.dispose()
+    head = ("id", "name", "role", "assets", "prefix", "created", "revoked")
+    widths = [max(len(str(x)) for x in col) for col in zip(head, *rows)]
+    for line in (head, *rows):
+        print("  ".join(str(x).ljust(w) for x, w in zip(line, widths)).rstrip())
+    return 0
+
+
+def cmd_keys_revoke(args: argparse.Namespace) -> int:
+    from service.db.keys import get_key, revoke_key
+
+    db = _keys_db()
+    try:
+        with db.transaction() as s:
+            row = get_key(s, key_id=args.key_id, for_update=True)
+            if row is None:
+                raise CommandError(f"no API key #{args.key_id} (kilter keys list shows them)")
+            if not revoke_key(s, key_id=args.key_id, actor="cli"):
+                raise CommandError(f"API key #{args.key_id} ({row.name}) is already revoked")
+            name = row.name
+    finally:
+        db.dispose()
+    print(f"revoked key #{args.key_id} named {name!r}: it is refused from its next request on, and its dashboard sessions have ended", file=sys.stderr)
+    return 0
+
+
+def cmd_keys_rotate(args: argparse.Namespace) -> int:
+    from service.db.keys import get_key, rotate_key
+
+    db = _keys_db()
+    try:
+        with db.transaction() as s:
+            if get_key(s, key_id=args.key_id) is None:
+                raise CommandError(f"no API key #{args.key_id} (kilter keys list shows them)")
+            rotated = rotate_key(s, key_id=args.key_id, actor="cli")
+            if rotated is None:
+                raise CommandError(f"API key #{args.key_id} is revoked; create a new one with kilter keys create")
+            key, row = rotated
+            new_id, name = row.id, row.name
+    finally:
+        db.dispose()
+    print(key)
+    print(f"key #{args.key_id} replaced by key #{new_id} named {name!r} (same role and assets) and revoked; the new key is shown only once", file=sys.stderr)
     return 0
 
 

@@ -100,3 +100,107 @@ def test_a_worker_that_has_not_caught_up_stores_nothing(pair: tuple[Env, Env], t
     finally:
         db.dispose()
     assert [row[0] for row in thresholds(a, "pump-01")] == [1, 2]
+
+
+# --- dashboard sessions ------------------------------------------------------------------
+
+
+def sign_in(env: Env, key: str) -> str:
+    """Sign in through `env`'s app; the session cookie it set."""
+    import re
+
+    env.client.cookies.clear()
+    page = env.client.get("/signin")
+    token = re.search(r'name="signin_token" value="([^"]+)"', page.text).group(1)
+    r = env.client.post("/signin", data={"api_key": key, "signin_token": token, "next": "/alerts"}, follow_redirects=False)
+    assert r.status_code == 303, r.text
+    return env.client.cookies["kilter_session"]
+
+
+def page(env: Env, cookie: str, path: str = "/alerts") -> int:
+    env.client.cookies.clear()
+    env.client.cookies.set("kilter_session", cookie)
+    return env.client.get(path, follow_redirects=False).status_code
+
+
+def test_a_session_from_one_worker_holds_on_the_other_and_sign_out_ends_it_everywhere(pair: tuple[Env, Env]) -> None:
+    import re
+
+    a, b = pair
+    cookie = sign_in(a, a.keys["maintenance"])
+    assert page(b, cookie) == 200 and page(a, cookie) == 200
+    # The sign-in form of one worker is accepted by the other (one secret, in the database).
+    a.client.cookies.clear()
+    form = a.client.get("/signin")
+    token = re.search(r'name="signin_token" value="([^"]+)"', form.text).group(1)
+    nonce = a.client.cookies["kilter_signin"]
+    b.client.cookies.clear()
+    b.client.cookies.set("kilter_signin", nonce)
+    r = b.client.post("/signin", data={"api_key": a.keys["operator"], "signin_token": token}, follow_redirects=False)
+    assert r.status_code == 303, r.text
+    # Sign out on b: the same cookie, replayed on either worker, is signed out.
+    page(b, cookie)
+    csrf = re.search(r'name="csrf_token" value="([^"]+)"', b.client.get("/alerts").text).group(1)
+    assert b.client.post("/signout", data={"csrf_token": csrf}, follow_redirects=False).status_code == 303
+    assert page(a, cookie) == 303 and page(b, cookie) == 303
+
+
+def test_revoking_a_key_signs_it_out_and_refuses_it_on_the_api(pair: tuple[Env, Env]) -> None:
+    a, b = pair
+    key = a.add_key("operator", "night-shift")
+    cookie = sign_in(a, key)
+    assert page(b, cookie) == 200
+    assert b.client.get("/v1/assets", headers={"Authorization": f"Bearer {key}"}).status_code == 200
+    (row,) = [k for k in a.client.get("/v1/keys", headers=a.auth("admin")).json()["items"] if k["name"] == "night-shift"]
+    assert row["prefix"] == key[:10] and row["revoked_at"] is None and "key" not in row
+    r = a.client.post(f"/v1/keys/{row['id']}/revoke", headers=a.auth("admin"))
+    assert r.status_code == 200 and r.json()["revoked_at"] is not None
+    assert b.client.get("/v1/assets", headers={"Authorization": f"Bearer {key}"}).status_code == 401
+    assert page(b, cookie) == 303 and page(a, cookie) == 303
+    assert a.client.post(f"/v1/keys/{row['id']}/revoke", headers=a.auth("admin")).status_code == 409
+    assert a.client.post("/v1/keys/99999/revoke", headers=a.auth("admin")).status_code == 404
+    audit = a.rows("SELECT actor, action FROM audit_log WHERE target = ?", f"api_key:{row['id']}")
+    assert ("test-admin", "key.revoke") in audit
+    assert a.rows("SELECT COUNT(*) FROM web_sessions WHERE key_id = ? AND ended_at IS NULL", row["id"]) == [(0,)]
+
+
+def test_rotating_a_key_gives_a_new_one_with_the_same_role_and_assets(pair: tuple[Env, Env]) -> None:
+    a, b = pair
+    old = a.add_key("machine", "gateway-3", assets=["pump-01"])
+    (row,) = [k for k in a.client.get("/v1/keys", headers=a.auth("admin")).json()["items"] if k["name"] == "gateway-3"]
+    r = a.client.post(f"/v1/keys/{row['id']}/rotate", headers=a.auth("admin"))
+    assert r.status_code == 200, r.text
+    body = r.json()
+    new = body["key"]
+    assert new != old and body["item"]["role"] == "machine" and body["item"]["assets"] == ["pump-01"]
+    assert body["replaces"]["revoked_at"] is not None
+    assert b.post("pump-01", readings(range(0, 4)), key=old).status_code == 401
+    assert b.post("pump-01", readings(range(0, 4)), key=new).status_code == 200
+    assert b.post("pump-02", readings(range(0, 4)), key=new).status_code == 403
+    for role in ("machine", "maintenance", "operator"):
+        assert a.client.get("/v1/keys", headers=a.auth(role)).status_code == 403
+        assert a.client.post(f"/v1/keys/{row['id']}/rotate", headers=a.auth(role)).status_code == 403
+
+
+def test_keys_list_revoke_rotate_on_the_command_line(monkeypatch, tmp_path: Path, tiny_dir: Path, capsys) -> None:
+    from service.cli import main
+
+    monkeypatch.setenv("KILTER_DATABASE_URL", f"sqlite:///{tmp_path / 'cli.db'}")
+    monkeypatch.setenv("KILTER_MODEL_DIR", str(tiny_dir))
+    monkeypatch.chdir(tmp_path)
+    assert main(["keys", "create", "--role", "operator", "--name", "day-shift"]) == 0
+    first = capsys.readouterr().out.strip()
+    assert main(["keys", "list"]) == 0
+    out = capsys.readouterr().out
+    assert "day-shift" in out and first[:10] in out and first not in out
+    assert main(["keys", "rotate", "1"]) == 0
+    captured = capsys.readouterr()
+    second = captured.out.strip()
+    assert second.startswith("ew_") and second != first and len(captured.out.splitlines()) == 1
+    assert main(["keys", "revoke", "2"]) == 0
+    capsys.readouterr()
+    assert main(["keys", "revoke", "2"]) == 2
+    assert "already revoked" in capsys.readouterr().err
+    assert main(["keys", "rotate", "7"]) == 2
+    lines = [ln.split() for ln in (main(["keys", "list"]), capsys.readouterr().out)[1].splitlines()[1:]]
+    assert [(ln[0], ln[-1] != "-") for ln in lines] == [("1", True), ("2", True)]
