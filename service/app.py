@@ -280,6 +280,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     app.add_middleware(FailedAuthLimit, max_failures=settings.auth_fail_limit, window_s=settings.auth_fail_window_s)
     app.add_middleware(RequestMetrics, metrics=metrics)
+    # Outermost: the client address (and scheme) from a trusted proxy's headers, else the peer's.
+    from uvicorn.middleware.proxy_headers import ProxyHeadersMiddleware
+
+    app.add_middleware(ProxyHeadersMiddleware, trusted_hosts=settings.trusted_proxy_list)
     return app
 
 

@@ -100,6 +100,9 @@ def cmd_serve(args: argparse.Namespace) -> int:
         workers=args.workers,
         log_level=args.log_level,
         access_log=False,
+        # X-Forwarded-* are believed only from KILTER_TRUSTED_PROXIES, by the app itself
+        # (service/api/ratelimit.py); uvicorn would otherwise trust any loopback peer.
+        proxy_headers=False,
     )
     return 0
 

@@ -47,9 +47,13 @@ class Settings(BaseSettings):
     # every replica the same value; unset, one is kept in a file beside an SQLite database.
     session_secret: SecretStr | None = Field(default=None, description="signs dashboard session cookies (at least 16 characters)")
 
-    # Failed authentication: this many 401s from one client address within the window make it 429 (service/api/ratelimit.py).
+    # Failed authentication: this many 401s from one client address within the window make its
+    # further failures 429 (service/api/ratelimit.py; counted in the database, across replicas).
     auth_fail_limit: int = Field(default=20, ge=0, description="401s per client address per window before 429; 0 turns it off")
     auth_fail_window_s: float = Field(default=60.0, gt=0)
+    # Proxies whose X-Forwarded-For / X-Forwarded-Proto are believed: comma-separated addresses
+    # or networks (10.0.0.0/8). Default none: the client address is the TCP peer.
+    trusted_proxies: str = Field(default="", description="comma-separated proxy addresses or CIDR networks trusted for X-Forwarded-For")
 
     # Retention: readings and window scores older than this are pruned in the background.
     retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
@@ -66,6 +70,26 @@ class Settings(BaseSettings):
     ) -> tuple[PydanticBaseSettingsSource, ...]:
         # KILTER_* first; the former prefix only where the new one is unset (service/legacy_env.py).
         return (init_settings, env_settings, LegacyPrefixSource(settings_cls), dotenv_settings, file_secret_settings)
+
+    @field_validator("trusted_proxies")
+    @classmethod
+    def _proxies(cls, v: str) -> str:
+        import ipaddress
+
+        for item in (x.strip() for x in v.split(",")):
+            if not item:
+                continue
+            if item == "*":
+                raise ValueError("'*' would believe X-Forwarded-For from anyone; list the proxies' addresses or networks")
+            try:
+                ipaddress.ip_network(item, strict=False)
+            except ValueError:
+                raise ValueError(f"{item!r} is not an IP address or network (e.g. 10.0.0.5 or 10.0.0.0/24)") from None
+        return v
+
+    @property
+    def trusted_proxy_list(self) -> list[str]:
+        return [x.strip() for x in self.trusted_proxies.split(",") if x.strip()]
 
     @field_validator("database_url")
     @classmethod
