@@ -69,15 +69,47 @@ def _settings():  # noqa: ANN202 - pydantic-settings validation errors become Co
         raise CommandError(f"settings: {e}") from e
 
 
+def _private_metrics_dir() -> str:
+    """A fresh folder (mode 0700) for prometheus_client's multiprocess files, given to every
+    worker through PROMETHEUS_MULTIPROC_DIR before any of them imports prometheus_client
+    (service/metrics.py). A folder already named there is the parent of the fresh one, so
+    figures from an earlier run never leak into this one."""
+    import os
+    import tempfile
+
+    from service.metrics import MULTIPROC_ENV  # imports prometheus_client only after the variable is set below
+
+    parent = os.environ.get(MULTIPROC_ENV) or None
+    if parent:
+        os.makedirs(parent, mode=0o700, exist_ok=True)
+    folder = tempfile.mkdtemp(prefix="kilter-metrics-", dir=parent)
+    os.environ[MULTIPROC_ENV] = folder
+    import prometheus_client.values
+
+    # With one worker uvicorn serves in this very process: pick the file-backed values here too.
+    prometheus_client.values.ValueClass = prometheus_client.values.get_value_class()
+    return folder
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
+    import shutil
+
+    if args.workers < 1:
+        raise CommandError("--workers must be at least 1")
+    metrics_dir = _private_metrics_dir()
+    try:
+        return _serve(args)
+    finally:
+        shutil.rmtree(metrics_dir, ignore_errors=True)
+
+
+def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
     from service.app import StartupError, load_registry, open_database
     from service.errors import ModelError
 
     settings = _settings()
-    if args.workers < 1:
-        raise CommandError("--workers must be at least 1")
     # Fail here, with the reason, rather than in each worker's startup.
     try:
         db = open_database(settings)
