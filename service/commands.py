@@ -69,7 +69,7 @@ def _settings():  # noqa: ANN202 - pydantic-settings validation errors become Co
         raise CommandError(f"settings: {e}") from e
 
 
-def _private_metrics_dir() -> str:
+def _private_metrics_dir() -> tuple[str, str | None]:
     """A fresh folder (mode 0700) for prometheus_client's multiprocess files, given to every
     worker through PROMETHEUS_MULTIPROC_DIR before any of them imports prometheus_client
     (service/metrics.py). A folder already named there is the parent of the fresh one, so
@@ -84,11 +84,15 @@ def _private_metrics_dir() -> str:
         os.makedirs(parent, mode=0o700, exist_ok=True)
     folder = tempfile.mkdtemp(prefix="kilter-metrics-", dir=parent)
     os.environ[MULTIPROC_ENV] = folder
+    _pick_value_class()
+    return folder, parent
+
+
+def _pick_value_class() -> None:
     import prometheus_client.values
 
-    # With one worker uvicorn serves in this very process: pick the file-backed values here too.
+    # With one worker uvicorn serves in this very process: its values follow the variable too.
     prometheus_client.values.ValueClass = prometheus_client.values.get_value_class()
-    return folder
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
@@ -96,10 +100,20 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     if args.workers < 1:
         raise CommandError("--workers must be at least 1")
-    metrics_dir = _private_metrics_dir()
+    import os
+
+    from service.metrics import MULTIPROC_ENV
+
+    metrics_dir, parent = _private_metrics_dir()
     try:
         return _serve(args)
     finally:
+        # Leave the process as it was (the command also runs in-process, in tests).
+        if parent is None:
+            os.environ.pop(MULTIPROC_ENV, None)
+        else:
+            os.environ[MULTIPROC_ENV] = parent
+        _pick_value_class()
         shutil.rmtree(metrics_dir, ignore_errors=True)
 
 
