@@ -136,6 +136,13 @@ def _serve(args: argparse.Namespace) -> int:
         registry = load_registry(settings)
     except ModelError as e:
         raise CommandError(f"refusing to start: {e.message}") from e
+    import os
+
+    from service.http_timeouts import ENV as HEADER_TIMEOUT_ENV
+    from service.http_timeouts import HeaderDeadlineProtocol
+
+    # The workers read the head deadline from the environment (a .env value reaches them so too).
+    os.environ[HEADER_TIMEOUT_ENV] = str(settings.header_timeout_s)
     served = ", ".join(f"{m.model_id}/{m.version}" for m in registry.models())
     print(f"kilter: serving {served} on http://{args.host}:{args.port} ({args.workers} worker(s))", file=sys.stderr)
     uvicorn.run(
@@ -149,6 +156,7 @@ def _serve(args: argparse.Namespace) -> int:
         # X-Forwarded-* are believed only from KILTER_TRUSTED_PROXIES, by the app itself
         # (service/api/ratelimit.py); uvicorn would otherwise trust any loopback peer.
         proxy_headers=False,
+        http=HeaderDeadlineProtocol,  # uvicorn's own protocol plus a deadline for the request head
     )
     return 0
 

@@ -59,6 +59,10 @@ class TooLarge(KilterError):
     status, code = 413, "too_large"
 
 
+class UnsupportedMediaType(KilterError):
+    status, code = 415, "unsupported_media_type"
+
+
 class Unauthorized(KilterError):
     status, code = 401, "unauthorized"
 

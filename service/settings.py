@@ -35,6 +35,8 @@ class Settings(BaseSettings):
 
     # Request limits (see service/ingest.py for what each means).
     max_body_bytes: int = Field(default=2_000_000, ge=1024, description="request body cap; larger is 413 before parsing")
+    header_timeout_s: float = Field(default=10.0, gt=0, description="a request's line and headers must arrive within this (kilter serve)")
+    body_timeout_s: float = Field(default=30.0, gt=0, description="a request's body must arrive within this after its headers; else 408")
     max_batch_readings: int = Field(default=5000, ge=1, description="readings per post; more is 413")
     max_score_windows: int = Field(default=512, ge=1, description="windows per POST /v1/score; more is 413")
     future_tolerance_s: float = Field(default=300.0, ge=0, description="how far past the server clock a reading may lie")

@@ -10,6 +10,7 @@ from typing import Annotated
 
 import numpy as np
 from fastapi import APIRouter, Path, Query, Request, Response
+from pydantic import AfterValidator
 
 from service.api.deps import DatabaseDep, DbSession, MachineCaller, MaintenanceCaller, MetricsDep, RegistryDep, SettingsDep
 from service.api.schemas import (
@@ -23,7 +24,9 @@ from service.api.schemas import (
     ScorePointOut,
     ScoresPage,
     as_dict,
+    check_asset_id,
     parse_body,
+    require_json,
 )
 from service.db import readings as q
 from service.errors import BadInput, NotFound, TooLarge
@@ -34,7 +37,8 @@ router = APIRouter(prefix="/v1", tags=["readings"])
 # schemas to the OpenAPI document's components.
 SELF_PARSED_BODIES = (ReadingsIn,)
 
-AssetId = Annotated[str, Path(pattern=ASSET_ID_PATTERN, description="1-64 characters of A-Z a-z 0-9 _ . -")]
+AssetId = Annotated[str, Path(pattern=ASSET_ID_PATTERN, description="1-64 characters of A-Z a-z 0-9 _ . -, not dots only"),
+                    AfterValidator(check_asset_id)]
 
 
 @router.post(
@@ -51,6 +55,7 @@ async def post_readings(asset_id: AssetId, request: Request, caller: MachineCall
     much as the rest of the request's Python (bench/ingest.py). Errors read as FastAPI's.
     Runs on the event loop, not in the thread pool: ingest is CPU work, so a worker thread
     would only add hand-overs of the GIL between it and the loop."""
+    require_json(request.headers.get("content-type"))
     body = parse_body(ReadingsIn, await request.body())
     state = request.app.state
     result = ingest(

@@ -44,8 +44,8 @@ def create_key(
         if not assets:
             raise ValueError("--assets needs at least one asset id")
         for a in assets:
-            if not ASSET_ID_RE.match(a):
-                raise ValueError(f"asset id {a!r} is not 1-64 characters of A-Z a-z 0-9 _ . -")
+            if not ASSET_ID_RE.match(a) or set(a) == {"."}:
+                raise ValueError(f"asset id {a!r} is not 1-64 characters of A-Z a-z 0-9 _ . - (not dots only)")
     key = KEY_PREFIX + secrets.token_urlsafe(32)
     row = ApiKey(name=name, role=role, assets=sorted(set(assets)) if assets else None, key_hash=hash_key(key), prefix=key[:10])
     session.add(row)
