@@ -101,6 +101,19 @@ class Settings(BaseSettings):
         return v
 
 
+# Settings every replica and worker must agree on: they decide what a request means for the
+# whole cluster (which database and models, what is refused, what counts as late or silent,
+# how failed authentications are counted, whose forwarded headers are believed). The compose
+# file sets each of them once for every replica (tests/reliability/test_compose.py checks it).
+# The rest (onnx_threads, onnx_chunk, db_busy_timeout_ms) may differ per machine.
+SHARED_SETTINGS = (
+    "database_url", "model_dir", "auto_upgrade", "default_model", "asset_models", "session_secret",
+    "max_body_bytes", "max_batch_readings", "max_score_windows", "future_tolerance_s", "lateness_windows",
+    "silent_after_windows", "auth_fail_limit", "auth_fail_window_s", "trusted_proxies",
+    "header_timeout_s", "body_timeout_s", "retention_days", "retention_interval_s",
+)
+
+
 def load_settings() -> Settings:
     """Settings from the environment and `.env`, with the former name's warnings (service/legacy_env.py)."""
     settings = Settings()
