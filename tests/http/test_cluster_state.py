@@ -204,3 +204,27 @@ def test_keys_list_revoke_rotate_on_the_command_line(monkeypatch, tmp_path: Path
     assert main(["keys", "rotate", "7"]) == 2
     lines = [ln.split() for ln in (main(["keys", "list"]), capsys.readouterr().out)[1].splitlines()[1:]]
     assert [(ln[0], ln[-1] != "-") for ln in lines] == [("1", True), ("2", True)]
+
+
+def test_a_replica_that_cannot_load_the_bound_version_is_not_ready(pair: tuple[Env, Env], tmp_path: Path, tiny_dir: Path) -> None:
+    """One replica's model folder lacks the version another switched the cluster to: it says
+    so (503) instead of answering with another model than the rest."""
+    import shutil
+
+    a, b = pair
+    assert a.post("pump-01", readings(range(0, 8))).status_code == 200
+    other = tmp_path / "other-models"
+    shutil.copytree(tiny_dir, other)
+    gen = start_env(tmp_path, other)  # a third process on the same database, with its own disk
+    c = next(gen)
+    try:
+        tiny_model.build(tiny_dir, model_id=MODEL, version="2", warning=5.5)
+        assert a.client.post("/v1/models/reload", headers=a.auth("admin")).status_code == 200
+        r = c.client.get("/readyz")
+        assert r.status_code == 503 and "cannot load it" in r.json()["checks"]["models"]
+        r = c.post("pump-01", readings(range(8, 10)))
+        assert r.status_code == 503 and f"{MODEL}/2" in r.json()["error"]["message"], r.text
+        assert b.client.get("/readyz").status_code == 200
+    finally:
+        with pytest.raises(StopIteration):
+            next(gen)
