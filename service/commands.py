@@ -121,21 +121,25 @@ def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
     from service.app import StartupError, load_registry, open_database
-    from service.errors import ModelError
+    from service.errors import ModelError, Unavailable
 
     settings = _settings()
     # Fail here, with the reason, rather than in each worker's startup.
     try:
         db = open_database(settings)
-        db.dispose()
     except StartupError as e:
         raise CommandError(str(e)) from e
     except Exception as e:
         raise CommandError(f"database {settings.database_url}: {e}") from e
     try:
         registry = load_registry(settings)
-    except ModelError as e:
+        # Bind model ids the database does not know yet here, once, rather than in every
+        # worker at once, and check that this machine holds the versions the cluster serves.
+        registry.attach(db)
+    except (ModelError, Unavailable) as e:
         raise CommandError(f"refusing to start: {e.message}") from e
+    finally:
+        db.dispose()
     import os
 
     from service.http_timeouts import ENV as HEADER_TIMEOUT_ENV

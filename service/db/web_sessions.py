@@ -13,9 +13,9 @@ from __future__ import annotations
 
 import hashlib
 import secrets
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 
-from sqlalchemy import Connection, select, update
+from sqlalchemy import Connection, delete, select, update
 from sqlalchemy.exc import IntegrityError
 
 from service.db.models import ApiKey, ClusterSecret, WebSessionRow
@@ -45,7 +45,10 @@ def cluster_secret(db: Database, name: str = SESSION_SECRET) -> str:
 
 
 def start(db: Database, *, sid: str, key_id: int, expires_at: datetime) -> None:
+    """Record a new session; sessions expired a day or more ago are dropped on the way (an
+    expired one is refused by its expiry already; the day keeps recent ones for inspection)."""
     with db.transaction() as s:
+        s.execute(delete(WebSessionRow).where(WebSessionRow.expires_at < datetime.now(timezone.utc) - timedelta(days=1)))
         s.add(WebSessionRow(sid_hash=sid_hash(sid), key_id=key_id, expires_at=expires_at))
 
 
@@ -60,8 +63,6 @@ def holds(conn: Connection, *, sid: str, key_id: int, now: datetime | None = Non
     if row is None:
         return False
     ended_at, expires_at, revoked_at = row
-    if expires_at.tzinfo is None:  # SQLite through a Core select of a joined row keeps the type; be safe
-        expires_at = expires_at.replace(tzinfo=timezone.utc)
     return ended_at is None and revoked_at is None and expires_at > now
 
 
