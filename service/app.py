@@ -23,6 +23,7 @@ from typing import Any
 import anyio.to_thread
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
+from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.db.migrate import current_revision, head_revision, upgrade
 from service.db.session import Database
@@ -125,9 +126,12 @@ async def _warm_up(app: FastAPI, db: Database) -> None:
     gc.freeze()
 
 
-class _BodyRefused(Exception):
+class _BodyRefused(StarletteHTTPException):
+    """Raised from the guarded receive. An HTTPException, so FastAPI's body reading passes it
+    on (it turns other errors into a 400) and the one error mapping answers it."""
+
     def __init__(self, status: int, code: str, message: str) -> None:
-        super().__init__(message)
+        super().__init__(status_code=status, detail=message)
         self.status, self.code, self.message = status, code, message
 
 

@@ -141,7 +141,7 @@ def install_error_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(_req: Request, exc: StarletteHTTPException) -> JSONResponse:
-        codes = {401: "unauthorized", 403: "forbidden", 404: "not_found", 405: "method_not_allowed", 413: "too_large"}
+        codes = {401: "unauthorized", 403: "forbidden", 404: "not_found", 405: "method_not_allowed", 408: "request_timeout", 413: "too_large"}
         return error_response(exc.status_code, codes.get(exc.status_code, "http_error"), str(exc.detail))
 
     @app.exception_handler(ScoringError)

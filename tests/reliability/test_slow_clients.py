@@ -68,11 +68,12 @@ def test_an_idle_connection_after_a_response_is_cut_off_too(served) -> None:
         assert _read_all(s) == b""
 
 
-def test_a_body_that_stops_arriving_gets_408(served) -> None:
+@pytest.mark.parametrize("path", [b"/v1/assets/pump-01/readings", b"/v1/score"])
+def test_a_body_that_stops_arriving_gets_408(served, path: bytes) -> None:
     server, keys = served
     with _connect(server) as s:
         s.sendall(
-            b"POST /v1/assets/pump-01/readings HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
+            b"POST " + path + b" HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
             + f"Authorization: Bearer {keys['machine']}\r\nContent-Length: 5000\r\n\r\n".encode()
             + b'{"readings": ['
         )
