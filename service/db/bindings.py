@@ -22,12 +22,15 @@ from __future__ import annotations
 
 from datetime import datetime, timezone
 
-from sqlalchemy import Connection, select, update
+from typing import Any
+
+from sqlalchemy import Connection, Select, bindparam, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service.db import readings as q
 from service.db.models import Asset, AuditLog, ClusterCounter, ModelBinding
+from service.db.prepared import prepared
 from service.db.thresholds import ensure_initial_version
 from service.errors import ModelSwitched
 from service.manifest import Manifest
@@ -35,10 +38,16 @@ from service.manifest import Manifest
 GENERATION = "registry_generation"
 
 
+def _generation_statement() -> Select[Any]:
+    return select(ClusterCounter.value).where(ClusterCounter.name == bindparam("name"))
+
+
 def generation(conn: Connection) -> int:
-    """The registry generation (0 before any switch): the one-row check made before each batch."""
-    value = conn.execute(select(ClusterCounter.value).where(ClusterCounter.name == GENERATION)).scalar()
-    return int(value or 0)
+    """The registry generation (0 before any switch): the one-row check made before each
+    batch, as one compiled statement on the cursor (service/db/prepared.py), since every
+    request pays it."""
+    rows = prepared(conn.dialect, "registry_generation", _generation_statement).rows(conn, {"name": GENERATION})
+    return int(rows[0][0]) if rows else 0
 
 
 def bound_versions(conn: Connection | Session) -> dict[str, str]:
