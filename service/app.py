@@ -190,28 +190,43 @@ class BodyGuard:
 
 
 class AuthFirst:
-    """API requests that carry a body are authenticated before any of it is read: without a
-    valid key they get their 401 at once (and the failed-authentication count sees it). The
-    caller found is left in the request state, where service/api/deps.get_caller takes it."""
+    """Requests that carry a body are authenticated before any of it is read. An API request
+    without a valid key gets its 401 at once (and the failed-authentication count sees it);
+    the caller found is left in the request state, where service/api/deps.get_caller takes
+    it. A dashboard post without a valid session reaches its route with an empty body, so
+    the route answers as it does for any signed-out post while the body stays unread."""
 
     METHODS = frozenset({"POST", "PUT", "PATCH", "DELETE"})
+    OPEN_POSTS = ("/signin",)  # the sign-in form has no session yet by nature
 
     def __init__(self, app: Any) -> None:
         self.app = app
 
     async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
-        if scope["type"] != "http" or scope.get("method") not in self.METHODS or not scope.get("path", "").startswith("/v1/"):
+        path = scope.get("path", "")
+        if scope["type"] != "http" or scope.get("method") not in self.METHODS or path in self.OPEN_POSTS:
             await self.app(scope, receive, send)
             return
         from starlette.requests import Request
 
-        from service.api.deps import get_caller
-        from service.errors import Unauthorized
+        if path.startswith("/v1/"):
+            from service.api.deps import get_caller
+            from service.errors import Unauthorized
 
-        try:
-            await get_caller(Request(scope))
-        except Unauthorized as e:
-            await error_response(401, e.code, e.message)(scope, receive, send)
+            try:
+                await get_caller(Request(scope))
+            except Unauthorized as e:
+                await error_response(401, e.code, e.message)(scope, receive, send)
+                return
+            await self.app(scope, receive, send)
+            return
+        web = _optional_module("service.web.access")
+        if web is not None and await anyio.to_thread.run_sync(web.current_user, Request(scope)) is None:
+
+            async def no_body() -> dict[str, Any]:
+                return {"type": "http.request", "body": b"", "more_body": False}
+
+            await self.app(scope, no_body, send)
             return
         await self.app(scope, receive, send)
 

@@ -93,3 +93,14 @@ def test_without_a_valid_key_the_body_is_never_waited_for(served) -> None:
             )
             head = s.recv(65536)
         assert head.startswith(b"HTTP/1.1 401"), head[:200]
+
+
+def test_a_dashboard_post_without_a_session_is_answered_without_its_body(served) -> None:
+    server, _ = served
+    with _connect(server) as s:
+        s.sendall(
+            b"POST /alerts/1/acknowledge HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/x-www-form-urlencoded\r\n"
+            b"Content-Length: 100000\r\n\r\ncsrf_token="
+        )
+        head = s.recv(65536)
+    assert head.startswith(b"HTTP/1.1 401"), head[:200]
