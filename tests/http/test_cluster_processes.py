@@ -253,7 +253,7 @@ def test_two_serve_processes_of_two_workers_behave_as_one_service(cluster) -> No
             if asset == ASSETS[1]:
                 step += 2
         log(f"24 batches after the reload (B first, alternating) answered model versions {''.join(after)} "
-            f"({len(RETRIED)} retried after a 503 {sorted(set(RETRIED))})")
+            f"(all clients so far: {len(RETRIED)} batch(es) retried after a 503 {sorted(set(RETRIED))})")
         assert after == ["2"] * 24
         models = {s.name: call("GET", f"{s.url}/v1/models", headers={"Authorization": f"Bearer {keys['admin']}"}).json()["items"][0]["version"]
                   for s in (a, b) for _ in range(3)}
