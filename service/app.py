@@ -23,6 +23,7 @@ from typing import Any
 import anyio.to_thread
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
+from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.db.migrate import current_revision, head_revision, upgrade
 from service.db.session import Database
@@ -40,6 +41,7 @@ API_ROUTER_MODULES = (
     "service.api.alerts",
     "service.api.thresholds",
     "service.api.models",
+    "service.api.keys",
 )
 WEB_ROUTER_MODULE = "service.web.routes"
 STATIC_DIR = Path(__file__).parent / "web" / "static"
@@ -125,50 +127,136 @@ async def _warm_up(app: FastAPI, db: Database) -> None:
     gc.freeze()
 
 
-class BodyLimit:
-    """413 for a request body over `max_bytes`, before anything parses it."""
+class _BodyRefused(StarletteHTTPException):
+    """Raised from the guarded receive. An HTTPException, so FastAPI's body reading passes it
+    on (it turns other errors into a 400) and the one error mapping answers it."""
 
-    def __init__(self, app: Any, max_bytes: int) -> None:
-        self.app, self.max_bytes = app, max_bytes
+    def __init__(self, status: int, code: str, message: str) -> None:
+        super().__init__(status_code=status, detail=message)
+        self.status, self.code, self.message = status, code, message
+
+
+class BodyGuard:
+    """413 for a request body over `max_bytes` and 408 for one that does not arrive within
+    `timeout_s` of the request's start, enforced as the app reads it.
+
+    The body is not read ahead of the app: a declared Content-Length over the cap is refused
+    at once, and otherwise the bytes are counted as the route pulls them, so a request the
+    app refuses first (a missing or wrong key: AuthFirst) is answered without its body ever
+    being read. A chunked body over the cap is a 413 as well, whatever the parser would have
+    made of a cut-off one."""
+
+    def __init__(self, app: Any, max_bytes: int, timeout_s: float = 30.0) -> None:
+        self.app, self.max_bytes, self.timeout_s = app, max_bytes, timeout_s
 
     async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        message = f"request body over the {self.max_bytes}-byte limit: send smaller batches"
+        too_large = f"request body over the {self.max_bytes}-byte limit: send smaller batches"
         for name, value in scope.get("headers", []):
             if name == b"content-length" and value.isdigit() and int(value) > self.max_bytes:
-                await error_response(413, "too_large", message)(scope, receive, send)
+                await error_response(413, "too_large", too_large)(scope, receive, send)
                 return
-        # Read the whole body (at most max_bytes) before the app sees any of it, so a chunked
-        # body over the cap is a 413 too, whatever the parser would have made of a cut-off one.
-        chunks: list[bytes] = []
+        deadline = time.monotonic() + self.timeout_s
         seen = 0
-        while True:
-            msg = await receive()
-            if msg["type"] == "http.disconnect":
-                return
-            if msg["type"] != "http.request":
-                continue
-            part = msg.get("body", b"")
-            seen += len(part)
-            if seen > self.max_bytes:
-                await error_response(413, "too_large", message)(scope, receive, send)
-                return
-            chunks.append(part)
-            if not msg.get("more_body", False):
-                break
-        body = b"".join(chunks)
-        replayed = False
+        done = False
+        started = False
 
-        async def replay_receive() -> dict[str, Any]:
-            nonlocal replayed
-            if not replayed:
-                replayed = True
-                return {"type": "http.request", "body": body, "more_body": False}
-            return await receive()  # after the body: only the disconnect remains
+        async def guarded_receive() -> dict[str, Any]:
+            nonlocal seen, done
+            if done:
+                return await receive()  # after the body: only the disconnect remains
+            try:
+                msg = await asyncio.wait_for(receive(), timeout=max(deadline - time.monotonic(), 0.001))
+            except TimeoutError:
+                raise _BodyRefused(408, "request_timeout", f"the request body did not arrive within {self.timeout_s:.0f} s") from None
+            if msg["type"] == "http.request":
+                seen += len(msg.get("body", b""))
+                if seen > self.max_bytes:
+                    raise _BodyRefused(413, "too_large", too_large)
+                done = not msg.get("more_body", False)
+            return msg
 
-        await self.app(scope, replay_receive, send)
+        async def watching_send(msg: dict[str, Any]) -> None:
+            nonlocal started
+            started = started or msg["type"] == "http.response.start"
+            await send(msg)
+
+        try:
+            await self.app(scope, guarded_receive, watching_send)
+        except _BodyRefused as e:
+            if not started:
+                await error_response(e.status, e.code, e.message)(scope, receive, send)
+
+
+class AuthFirst:
+    """Requests that carry a body are authenticated before any of it is read. An API request
+    without a valid key gets its 401 at once (and the failed-authentication count sees it);
+    the caller found is left in the request state, where service/api/deps.get_caller takes
+    it. A dashboard post without a valid session reaches its route with an empty body, so
+    the route answers as it does for any signed-out post while the body stays unread."""
+
+    METHODS = frozenset({"POST", "PUT", "PATCH", "DELETE"})
+    OPEN_POSTS = ("/signin",)  # the sign-in form has no session yet by nature
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
+        path = scope.get("path", "")
+        if scope["type"] != "http" or scope.get("method") not in self.METHODS or path in self.OPEN_POSTS:
+            await self.app(scope, receive, send)
+            return
+        from starlette.requests import Request
+
+        if path.startswith("/v1/"):
+            from service.api.deps import get_caller
+            from service.errors import Unauthorized
+
+            try:
+                await anyio.to_thread.run_sync(get_caller, Request(scope))  # a database look-up: off the loop
+            except Unauthorized as e:
+                await error_response(401, e.code, e.message)(scope, receive, send)
+                return
+            await self.app(scope, receive, send)
+            return
+        web = _optional_module("service.web.access")
+        if web is not None and await anyio.to_thread.run_sync(web.current_user, Request(scope)) is None:
+
+            async def no_body() -> dict[str, Any]:
+                return {"type": "http.request", "body": b"", "more_body": False}
+
+            await self.app(scope, no_body, send)
+            return
+        await self.app(scope, receive, send)
+
+
+HSTS = b"max-age=31536000"  # one year, the usual value (common practice); no includeSubDomains: other hosts are not ours to bind
+
+
+class SecurityHeaders:
+    """X-Content-Type-Options: nosniff on every answer, and Strict-Transport-Security when the
+    request came over TLS (directly, or through a trusted proxy's X-Forwarded-Proto)."""
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        tls = scope.get("scheme") == "https"
+
+        async def add_headers(msg: dict[str, Any]) -> None:
+            if msg["type"] == "http.response.start":
+                headers = [*msg.get("headers", []), (b"x-content-type-options", b"nosniff")]
+                if tls:
+                    headers.append((b"strict-transport-security", HSTS))
+                msg = {**msg, "headers": headers}
+            await send(msg)
+
+        await self.app(scope, receive, add_headers)
 
 
 class RequestMetrics:
@@ -231,7 +319,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         db = open_database(settings)
         try:
-            app.state.registry = load_registry(settings)
+            registry = load_registry(settings)
+            # Serve the versions the database binds (the cluster's choice), not only what is on disk.
+            await anyio.to_thread.run_sync(registry.attach, db)
+            app.state.registry = registry
         except Exception:
             db.dispose()
             raise
@@ -275,11 +366,17 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         if STATIC_DIR.is_dir():
             app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
 
-    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(AuthFirst)
+    app.add_middleware(BodyGuard, max_bytes=settings.max_body_bytes, timeout_s=settings.body_timeout_s)
     from service.api.ratelimit import FailedAuthLimit
 
     app.add_middleware(FailedAuthLimit, max_failures=settings.auth_fail_limit, window_s=settings.auth_fail_window_s)
     app.add_middleware(RequestMetrics, metrics=metrics)
+    app.add_middleware(SecurityHeaders)
+    # Outermost: the client address (and scheme) from a trusted proxy's headers, else the peer's.
+    from uvicorn.middleware.proxy_headers import ProxyHeadersMiddleware
+
+    app.add_middleware(ProxyHeadersMiddleware, trusted_hosts=settings.trusted_proxy_list)
     return app
 
 

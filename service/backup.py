@@ -56,6 +56,9 @@ def backup_sqlite(database_url: str, target: Path, *, overwrite: bool = False) -
         pages = total
 
     try:
+        # The copy holds what the database holds (key hashes, the session secret): mode 0600.
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        os.close(fd)
         src = sqlite3.connect(f"file:{source}?mode=rw", uri=True, timeout=30)  # rw: never creates a file
         try:
             dst = sqlite3.connect(tmp)

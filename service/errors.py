@@ -53,6 +53,10 @@ class TooLarge(KilterError):
     code = "too_large"
 
 
+class UnsupportedMediaType(KilterError):
+    code = "unsupported_media_type"
+
+
 class Unauthorized(KilterError):
     code = "unauthorized"
 
@@ -85,6 +89,13 @@ class DatabaseBusy(Unavailable):
 class DatabaseUnavailable(Unavailable):
     code = "database_unavailable"
     retry_after_s = 5
+
+
+class ModelSwitched(Unavailable):
+    """The cluster switched an asset's model while this process scored a batch with the old
+    one; nothing was stored and sending the batch again is safe (issue 11)."""
+
+    code = "model_switched"
 
 
 class ModelError(KilterError):

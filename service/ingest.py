@@ -47,8 +47,8 @@ Decisions (the numbers are settings, service/settings.py):
 * Speed: the statements of the usual course are compiled once per engine and run on the
   DBAPI cursor (service/db/prepared.py); an ORM session joins the transaction only for the
   rare steps (a new asset, a new threshold version, gap records).
-* The rule's levels and timing are the asset's newest threshold version; when the served
-  model version changes, a new calibrated version is created from the new manifest. The
+* The rule's levels and timing are the asset's newest threshold version; a model switch
+  gives it one new calibrated version, at the switch (service/db/bindings.py). The
   asset's `rule_override` (on_k, on_n, off_m, deadband_frac) applies on top.
 """
 
@@ -76,7 +76,7 @@ from service.db import ingest_sql as store
 from service.db.ingest_sql import AssetRow, ThresholdRow
 from service.db.models import Asset, SkippedWindow, ThresholdVersion
 from service.db.session import Database
-from service.db.thresholds import ensure_initial_version
+from service.db.bindings import ensure_threshold
 from service.errors import BadInput, Conflict, Forbidden, TooLarge
 from service.manifest import Manifest
 from service.metrics import Metrics
@@ -295,8 +295,12 @@ def check_asset_access(session: Session, *, caller: Caller, asset_id: str) -> As
     return q.get_asset(session, asset_id=asset_id)
 
 
-def resolve_model(registry: ModelRegistry, asset: Asset | None, asset_id: str) -> LoadedModel:
-    model_id = asset.model_id if asset is not None else registry.model_for_asset(asset_id)
+def resolve_model(registry: ModelRegistry, asset: Asset | None, asset_id: str, *, db: Database, model_id: str | None = None) -> LoadedModel:
+    """The model version the cluster serves for this asset, after the registry's one-row
+    check of the database's generation (service/models_registry.py: ModelRegistry.sync)."""
+    registry.sync(db)
+    if model_id is None:
+        model_id = asset.model_id if asset is not None else registry.model_for_asset(asset_id)
     if model_id is None:
         served = sorted(m.model_id for m in registry.models())
         raise BadInput(
@@ -326,11 +330,11 @@ def ingest(
     now = now or datetime.now(timezone.utc)
     bound = registry.bound_model(asset_id) if caller.may_use_asset(asset_id) else None
     if bound is not None:
-        model = registry.get(bound)
+        model = resolve_model(registry, None, asset_id, db=db, model_id=bound)
     else:
         with db.session() as s:
             asset = check_asset_access(s, caller=caller, asset_id=asset_id)
-        model = resolve_model(registry, asset, asset_id)
+        model = resolve_model(registry, asset, asset_id, db=db)
     ts_ms, values, dicts = validate_batch(
         readings, channels=model.channels, now_s=now.timestamp(), future_tolerance_s=settings.future_tolerance_s,
         manifest=model.manifest,
@@ -595,21 +599,10 @@ def _value_rows(rows: list[tuple[int, dict[str, Any]]], names: Sequence[str]) ->
 
 
 def _new_threshold_version(session: Session, *, asset_id: str, model: LoadedModel, first: bool) -> None:
-    """Version 1 from the manifest for a new asset, or a calibrated version when the served
-    model version changed (rare: through the ORM, in the request's transaction)."""
-    m = model.manifest
-    orm_asset = session.get(Asset, asset_id)
-    assert orm_asset is not None
-    if first:
-        ensure_initial_version(session, asset=orm_asset, manifest=m)
-    else:
-        q.add_threshold_version(
-            session, asset_id=asset_id, rule=manifest_rule(m), origin="calibrated",
-            budget_per_week=m.thresholds.warning_budget_per_week,
-            reason=f"model changed to {model.model_id}/{model.version}", created_by=f"model {model.model_id}/{model.version}",
-            model_id=model.model_id, model_version=model.version,
-        )
-    session.flush()
+    """Version 1 from the manifest for a new asset; otherwise the asset's threshold names
+    another model version: service/db/bindings.ensure_threshold decides (ModelSwitched when
+    this process's model is the stale one; the version the asset missed when it is not)."""
+    ensure_threshold(session, asset_id=asset_id, manifest=model.manifest, first=first)
 
 
 # A batch whose stored-looking timestamps span at most this many grid points per reading

@@ -18,6 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 SCHEMA_VERSION = 1
 MANIFEST_FILE = "manifest.json"
 ONNX_FILE = "model.onnx"
+FILE_NAME_PATTERN = r"^[A-Za-z0-9_][A-Za-z0-9_.\-]*$"  # a plain file name: no folder, no '..', no absolute path
 CALIBRATION_FILE = "calibration_scores.json"
 
 # Graph I/O names (DESIGN.md, "The model contract").
@@ -231,9 +232,11 @@ class Manifest(_Strict):
     architecture: Architecture
     training: TrainingSummary
     validation: ValidationFigures
-    onnx_file: str = ONNX_FILE
+    # File names inside the model folder, never paths: a manifest cannot point the service
+    # at another folder's graph or at any other file on the machine.
+    onnx_file: str = Field(default=ONNX_FILE, max_length=128, pattern=FILE_NAME_PATTERN)
     onnx_sha256: str = Field(pattern=r"^[0-9a-f]{64}$")
-    calibration_file: str = CALIBRATION_FILE
+    calibration_file: str = Field(default=CALIBRATION_FILE, max_length=128, pattern=FILE_NAME_PATTERN)
     plausible: PlausibleLimits = Field(description="readings outside these are refused (see PLAUSIBLE_SCALES)")
 
     @model_validator(mode="before")
@@ -344,6 +347,8 @@ def load_manifest(model_dir: Path) -> Manifest:
 
 def load_calibration(model_dir: Path, manifest: Manifest) -> CalibrationScores:
     path = Path(model_dir) / manifest.calibration_file
+    if not path.resolve().is_relative_to(Path(model_dir).resolve()):
+        raise ValueError(f"{path}: the calibration file must lie inside the model folder {model_dir}")
     try:
         return CalibrationScores.model_validate_json(path.read_text(encoding="utf-8"))
     except FileNotFoundError as e:

@@ -4,10 +4,14 @@ with OnnxScorer and validated before it serves.
 
 Validation of a folder: the manifest parses, ONNX Runtime loads the graph, its input and
 output names and shapes match the manifest, the file's sha256 matches the manifest, the
-calibration scores parse, and a test window gives finite outputs. The served version of
-a model id is its highest version (numeric parts compared as numbers). `reload()` builds
-and validates a complete new registry before switching; on any failure the old one keeps
-serving and the error says which folder failed and why.
+calibration scores parse, and a test window gives finite outputs. The version a model id serves is the cluster's choice, kept in the database
+(service/db/bindings.py), so every worker and replica serves the same one: the first process
+to see a model id binds its highest version on disk (numeric parts compared as numbers);
+after that only `reload()` moves it. `reload()` builds and validates a complete new registry
+from the directory's highest versions before it records the switch; on any failure the old
+one keeps serving and the error says which folder failed and why. Every other process picks
+the switch up before its next batch: `sync()` reads the database's one-row registry
+generation and, only when it moved, loads the bound versions from its own disk.
 
 Assets are bound to a model id: `asset_models` setting, else the model whose training
 assets list the asset, else `default_model`, else the only model there is.
@@ -17,13 +21,20 @@ from __future__ import annotations
 
 import re
 import threading
+import logging
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from service.errors import ModelError
+from service.errors import ModelError, Unavailable
 from service.manifest import MANIFEST_FILE, CalibrationScores, Manifest, load_calibration, load_manifest
 from service.scoring import DEFAULT_CHUNK, OnnxScorer, ScoringError
+
+if TYPE_CHECKING:
+    from service.db.session import Database
+
+log = logging.getLogger("kilter")
 
 
 @dataclass(frozen=True)
@@ -116,6 +127,10 @@ class ModelRegistry:
         # asset id -> model id of assets this process has seen; a binding never changes once
         # the asset exists, so a hit saves the ingest path a database round trip.
         self._bound: dict[str, str] = {}
+        # The database's registry generation this process's served set matches (None: not
+        # attached to a database yet); `_sync_lock` lets one thread at a time catch up.
+        self._generation: int | None = None
+        self._sync_lock = threading.Lock()
 
     def _build(self) -> tuple[dict[str, LoadedModel], dict[str, list[str]]]:
         found = discover(self.model_dir)
@@ -136,9 +151,83 @@ class ModelRegistry:
         with self._lock:
             self._served, self._available = served, available
 
-    def reload(self) -> ReloadResult:
-        """Validate the directory's current contents, then switch; on error keep serving the old set."""
+    def attach(self, db: Database, *, actor: str = "startup") -> None:
+        """Serve what the database binds: bind model ids it has no binding for yet to the
+        versions loaded here, then load any bound version that differs (`sync`)."""
+        from service.db import bindings
+
+        with self._lock:
+            found = {m: lm.version for m, lm in self._served.items()}
+        with db.transaction() as s:
+            seeded = bindings.seed(s, found=found, actor=actor)
+        if seeded:
+            log.info("bound %s to the versions found on disk", ", ".join(f"{m}/{found[m]}" for m in seeded))
+        self._generation = None
+        self.sync(db)
+
+    def sync(self, db: Database) -> None:
+        """Catch up with the cluster before a batch: one indexed one-row read; when the
+        generation moved, the bound versions are loaded from this process's model directory.
+        Unavailable (503) when a bound version cannot be loaded here: this replica must not
+        answer with another model than the rest of the cluster."""
+        from service.db import bindings
+
+        with db.engine.connect() as conn:
+            gen = bindings.generation(conn)
+        if gen == self._generation:
+            return
+        with self._sync_lock:  # one thread catches up; the others wait for it, then find nothing to do
+            with db.engine.connect() as conn:
+                gen = bindings.generation(conn)
+                bound = bindings.bound_versions(conn) if gen != self._generation else {}
+            if gen == self._generation:
+                return
+            self._switch_to(bound)
+            self._generation = gen
+
+    def _switch_to(self, bound: dict[str, str]) -> None:
+        with self._lock:
+            current = dict(self._served)
+        served = dict(current)
+        for model_id, version in bound.items():
+            if model_id in current and current[model_id].version == version:
+                continue
+            folder = self.model_dir / model_id / version
+            try:
+                served[model_id] = validate_folder(folder, threads=self.threads, chunk_size=self.chunk_size)
+            except ModelError as e:
+                raise Unavailable(
+                    f"the cluster serves {model_id}/{version} but this replica cannot load it: {e.message}; "
+                    f"copy that folder into {self.model_dir} on every replica"
+                ) from None
+        try:
+            available = {m: [p.name for p in paths] for m, paths in discover(self.model_dir).items()}
+        except ModelError:
+            available = self._available
+        with self._lock:
+            self._served, self._available = served, available
+        for model_id in served:
+            if model_id not in current or current[model_id].version != served[model_id].version:
+                log.info("now serving %s/%s", model_id, served[model_id].version)
+
+    def reload(self, db: Database | None = None, *, actor: str = "reload", reason: str = "reload") -> ReloadResult:
+        """Validate the directory's current contents, then switch; on error keep serving the old set.
+
+        With `db`, the switch is recorded there (bindings, one calibrated threshold version
+        per asset of a changed model, the generation) before this process serves it; every
+        other process follows at its next `sync`."""
+        if db is not None:
+            self.sync(db)
         served, available = self._build()
+        if db is not None:
+            from service.db import bindings
+
+            with db.transaction() as s:
+                changed, gen = bindings.switch(s, manifests={m: lm.manifest for m, lm in served.items()}, actor=actor, reason=reason)
+            with self._lock:
+                self._served, self._available = served, available
+            self._generation = gen
+            return ReloadResult({m: lm.version for m, lm in served.items()}, changed)
         with self._lock:
             old = self._served
             self._served, self._available = served, available

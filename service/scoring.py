@@ -118,6 +118,9 @@ class OnnxScorer:
         self._low = np.asarray(self.manifest.plausible.low, dtype=np.float32)
         self._high = np.asarray(self.manifest.plausible.high, dtype=np.float32)
         path = self.model_dir / self.manifest.onnx_file
+        # The manifest names a plain file (service/manifest.py); a symlink must not lead out either.
+        if not path.resolve().is_relative_to(self.model_dir.resolve()):
+            raise ScoringError(f"{path}: the ONNX file must lie inside the model folder {self.model_dir}")
         if not path.is_file():
             raise ScoringError(f"{path}: ONNX file missing")
         if verify_sha256:

@@ -35,6 +35,8 @@ class Settings(BaseSettings):
 
     # Request limits (see service/ingest.py for what each means).
     max_body_bytes: int = Field(default=2_000_000, ge=1024, description="request body cap; larger is 413 before parsing")
+    header_timeout_s: float = Field(default=10.0, gt=0, description="a request's line and headers must arrive within this (kilter serve)")
+    body_timeout_s: float = Field(default=30.0, gt=0, description="a request's body must arrive within this after its headers; else 408")
     max_batch_readings: int = Field(default=5000, ge=1, description="readings per post; more is 413")
     max_score_windows: int = Field(default=512, ge=1, description="windows per POST /v1/score; more is 413")
     future_tolerance_s: float = Field(default=300.0, ge=0, description="how far past the server clock a reading may lie")
@@ -47,9 +49,13 @@ class Settings(BaseSettings):
     # every replica the same value; unset, one is kept in a file beside an SQLite database.
     session_secret: SecretStr | None = Field(default=None, description="signs dashboard session cookies (at least 16 characters)")
 
-    # Failed authentication: this many 401s from one client address within the window make it 429 (service/api/ratelimit.py).
+    # Failed authentication: this many 401s from one client address within the window make its
+    # further failures 429 (service/api/ratelimit.py; counted in the database, across replicas).
     auth_fail_limit: int = Field(default=20, ge=0, description="401s per client address per window before 429; 0 turns it off")
     auth_fail_window_s: float = Field(default=60.0, gt=0)
+    # Proxies whose X-Forwarded-For / X-Forwarded-Proto are believed: comma-separated addresses
+    # or networks (10.0.0.0/8). Default none: the client address is the TCP peer.
+    trusted_proxies: str = Field(default="", description="comma-separated proxy addresses or CIDR networks trusted for X-Forwarded-For")
 
     # Retention: readings and window scores older than this are pruned in the background.
     retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
@@ -67,12 +73,45 @@ class Settings(BaseSettings):
         # KILTER_* first; the former prefix only where the new one is unset (service/legacy_env.py).
         return (init_settings, env_settings, LegacyPrefixSource(settings_cls), dotenv_settings, file_secret_settings)
 
+    @field_validator("trusted_proxies")
+    @classmethod
+    def _proxies(cls, v: str) -> str:
+        import ipaddress
+
+        for item in (x.strip() for x in v.split(",")):
+            if not item:
+                continue
+            if item == "*":
+                raise ValueError("'*' would believe X-Forwarded-For from anyone; list the proxies' addresses or networks")
+            try:
+                ipaddress.ip_network(item, strict=False)
+            except ValueError:
+                raise ValueError(f"{item!r} is not an IP address or network (e.g. 10.0.0.5 or 10.0.0.0/24)") from None
+        return v
+
+    @property
+    def trusted_proxy_list(self) -> list[str]:
+        return [x.strip() for x in self.trusted_proxies.split(",") if x.strip()]
+
     @field_validator("database_url")
     @classmethod
     def _url(cls, v: str) -> str:
         if "://" not in v:
             raise ValueError("give an SQLAlchemy URL such as sqlite:///var/kilter.db or postgresql+psycopg://...")
         return v
+
+
+# Settings every replica and worker must agree on: they decide what a request means for the
+# whole cluster (which database and models, what is refused, what counts as late or silent,
+# how failed authentications are counted, whose forwarded headers are believed). The compose
+# file sets each of them once for every replica (tests/reliability/test_compose.py checks it).
+# The rest (onnx_threads, onnx_chunk, db_busy_timeout_ms) may differ per machine.
+SHARED_SETTINGS = (
+    "database_url", "model_dir", "auto_upgrade", "default_model", "asset_models", "session_secret",
+    "max_body_bytes", "max_batch_readings", "max_score_windows", "future_tolerance_s", "lateness_windows",
+    "silent_after_windows", "auth_fail_limit", "auth_fail_window_s", "trusted_proxies",
+    "header_timeout_s", "body_timeout_s", "retention_days", "retention_interval_s",
+)
 
 
 def load_settings() -> Settings:

@@ -33,7 +33,8 @@ from service.errors import BadInput, ModelError
 
 router = APIRouter(prefix="/v1", tags=["alerts"])
 
-AlertId = Annotated[int, Path(ge=1, description="alert id")]
+# Bounded by the database integer (SQLite and PostgreSQL BIGINT): a larger id is a 422, never a driver overflow.
+AlertId = Annotated[int, Path(ge=1, le=2**63 - 1, description="alert id")]
 HEALTH_DEFAULT = timedelta(days=7)
 CAUTION = (
     "Advisory figures in the spirit of ISA-18.2 / IEC 62682 and EEMUA 191 benchmarks as summarised "

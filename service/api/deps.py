@@ -38,8 +38,12 @@ async def get_settings(request: Request) -> Settings:
     return request.app.state.settings
 
 
-async def get_registry(request: Request) -> ModelRegistry:
-    return request.app.state.registry
+def get_registry(request: Request) -> ModelRegistry:
+    """The registry, caught up with the cluster's model versions (a one-row check of the
+    database; in the thread pool, since catching up loads models from disk)."""
+    registry: ModelRegistry = request.app.state.registry
+    registry.sync(request.app.state.db)
+    return registry
 
 
 async def get_metrics(request: Request) -> Metrics:

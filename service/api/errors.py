@@ -30,6 +30,7 @@ from service.errors import (
     NotFound,
     TooLarge,
     Unauthorized,
+    UnsupportedMediaType,
     Unavailable,
     database_error,
     is_busy,
@@ -47,6 +48,7 @@ HTTP_STATUS: dict[type[KilterError], int] = {
     Forbidden: 403,
     Unavailable: 503,
     ModelError: 409,
+    UnsupportedMediaType: 415,
 }
 
 
@@ -124,7 +126,7 @@ def install_error_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(_req: Request, exc: StarletteHTTPException) -> JSONResponse:
-        codes = {401: "unauthorized", 403: "forbidden", 404: "not_found", 405: "method_not_allowed", 413: "too_large"}
+        codes = {401: "unauthorized", 403: "forbidden", 404: "not_found", 405: "method_not_allowed", 408: "request_timeout", 413: "too_large"}
         return error_response(exc.status_code, codes.get(exc.status_code, "http_error"), str(exc.detail))
 
     @app.exception_handler(ScoringError)

@@ -2,12 +2,16 @@
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
 from fastapi.responses import JSONResponse, PlainTextResponse
 
+from service.errors import KilterError
 from service.metrics import CONTENT_TYPE
+
+log = logging.getLogger("kilter")
 
 router = APIRouter(tags=["health"])
 
@@ -22,11 +26,19 @@ def readyz(request: Request) -> JSONResponse:
     checks: dict[str, Any] = {}
     ok = True
     registry = getattr(request.app.state, "registry", None)
+    db = getattr(request.app.state, "db", None)
     if registry is not None and registry.loaded:
-        checks["models"] = {m.model_id: m.version for m in registry.models()}
+        try:
+            if db is not None:
+                registry.sync(db)  # the versions the cluster serves, or not ready if this replica cannot load them
+            checks["models"] = {m.model_id: m.version for m in registry.models()}
+        except KilterError as e:
+            ok, checks["models"] = False, e.message
+        except Exception as e:  # the database check below says more
+            checks["models"] = {m.model_id: m.version for m in registry.models()}
+            log.debug("readiness: registry check failed: %s", e)
     else:
         ok, checks["models"] = False, "not loaded"
-    db = getattr(request.app.state, "db", None)
     try:
         if db is None:
             raise RuntimeError("not opened")

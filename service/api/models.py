@@ -3,7 +3,10 @@
 Reload goes through ModelRegistry.reload(), which validates every folder of the model
 directory (ONNX loads, names and shapes match the manifest, sha256 matches, a test window
 gives finite output) before it switches; a bad candidate is refused with the reason (409)
-and the models in service keep serving. Both outcomes are audited.
+and the models in service keep serving. Both outcomes are audited. The switch is recorded
+in the database (service/db/bindings.py: the binding, one calibrated threshold version per
+asset of a changed model created by the caller, the registry generation), so every worker
+and replica serves the new version from its next batch on.
 """
 
 from __future__ import annotations
@@ -60,7 +63,7 @@ def list_models(db: DbSession, _caller: AdminCaller, registry: RegistryDep) -> M
 @router.post("/reload", response_model=ReloadOut)
 def reload_models(database: DatabaseDep, caller: AdminCaller, registry: RegistryDep) -> ReloadOut:
     try:
-        result = registry.reload()
+        result = registry.reload(database, actor=caller.name, reason=f"reload by {caller.name}")
     except ModelError as e:
         with database.transaction() as s:
             s.add(AuditLog(actor=caller.name, action="model.reload_refused", target=str(registry.model_dir), details={"reason": e.message}))

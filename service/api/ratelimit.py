@@ -1,59 +1,47 @@
-"""Failed-authentication rate limit per client address, as ASGI middleware.
+"""Failed-authentication limit per client address, as ASGI middleware, counted in the
+database across workers and replicas (service/db/auth_failures.py).
 
-After `max_failures` responses of 401 to one client address within `window_s` seconds,
-that address gets 429 (with Retry-After) on everything but the health, readiness and
-metrics endpoints and static files, until its oldest failure in the window ages out. A
-wrong key is then as expensive to guess as it should be, and a correct key from another
-address is unaffected.
+Every 401 the app answers is recorded against the client address. Once an address has
+`max_failures` failures within `window_s` seconds, its further *failing* requests get 429
+(with Retry-After) instead of 401, and are not counted, so the table stays small. A request
+that authenticates is never refused: a correct key works from an address where others keep
+failing (an office behind one NAT, a shared gateway). Successful requests cost nothing
+here: the database is asked only when the app's answer is a 401.
 
-Counts live in each process's memory: with N replicas an address may fail up to N times
-the limit before every replica refuses it. That is acceptable for a brute-force brake
-(nothing correctness needs lives here). Behind a proxy the client address is the one
-uvicorn takes from X-Forwarded-For when the proxy is trusted (FORWARDED_ALLOW_IPS).
+The client address is the TCP peer, or the address a trusted proxy put in X-Forwarded-For
+when the peer is one of KILTER_TRUSTED_PROXIES (default none: the header is ignored);
+app.py puts that rewrite (uvicorn's ProxyHeadersMiddleware) in front of this one, and
+`kilter serve` turns uvicorn's own trust of loopback peers off.
 """
 
 from __future__ import annotations
 
 import math
 import time
-from collections import OrderedDict, deque
 from collections.abc import Callable
 from typing import Any
 
-from service.errors import error_response
+import anyio.to_thread
 
-OPEN_PREFIXES = ("/healthz", "/readyz", "/metrics", "/static/")
-MAX_TRACKED = 10_000  # addresses remembered at once; the least recently failing are forgotten
+from service.db import auth_failures
+from service.errors import error_response
 
 
 class FailedAuthLimit:
-    """429 for a client address with too many recent 401s; see the module docstring."""
+    """429 instead of 401 for a client address with too many recent 401s; see the module docstring."""
 
-    def __init__(
-        self, app: Any, max_failures: int = 20, window_s: float = 60.0, clock: Callable[[], float] = time.monotonic
-    ) -> None:
+    def __init__(self, app: Any, max_failures: int = 20, window_s: float = 60.0, clock: Callable[[], float] = time.time) -> None:
         self.app, self.max_failures, self.window_s, self.clock = app, max_failures, window_s, clock
-        self._failures: OrderedDict[str, deque[float]] = OrderedDict()
 
-    def _recent(self, address: str, now: float) -> deque[float] | None:
-        q = self._failures.get(address)
-        if q is None:
-            return None
-        while q and q[0] <= now - self.window_s:
-            q.popleft()
-        if not q:
-            del self._failures[address]
-            return None
-        return q
-
-    def _record(self, address: str, now: float) -> None:
-        q = self._failures.pop(address, None) or deque()
-        q.append(now)
-        while len(q) > self.max_failures:
-            q.popleft()
-        self._failures[address] = q
-        while len(self._failures) > MAX_TRACKED:
-            self._failures.popitem(last=False)
+    def _judge(self, db: Any, address: str) -> int | None:
+        """Seconds to wait when the address is over the limit (nothing recorded), else None (the failure recorded)."""
+        now_ms = int(self.clock() * 1000)
+        window_ms = int(self.window_s * 1000)
+        n, oldest = auth_failures.recent(db, address=address, since_ms=now_ms - window_ms)
+        if n >= self.max_failures and oldest is not None:
+            return max(1, math.ceil((oldest + window_ms - now_ms) / 1000))
+        auth_failures.record(db, address=address, at_ms=now_ms, forget_before_ms=now_ms - window_ms)
+        return None
 
     async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
         if scope["type"] != "http" or self.max_failures <= 0:
@@ -61,22 +49,25 @@ class FailedAuthLimit:
             return
         client = scope.get("client")
         address = client[0] if client else "unknown"
-        path = scope.get("path", "")
-        now = self.clock()
-        q = self._recent(address, now)
-        if q is not None and len(q) >= self.max_failures and not path.startswith(OPEN_PREFIXES):
-            retry_after = max(1, math.ceil(q[0] + self.window_s - now))
-            response = error_response(
-                429, "too_many_failures",
-                f"{len(q)} failed authentications from {address} in the last {self.window_s:.0f} s; retry in {retry_after} s",
-            )
-            response.headers["Retry-After"] = str(retry_after)
-            await response(scope, receive, send)
-            return
+        db = scope["app"].state.db
+        replaced = False
 
         async def watching_send(msg: dict[str, Any]) -> None:
+            nonlocal replaced
             if msg["type"] == "http.response.start" and msg["status"] == 401:
-                self._record(address, self.clock())
+                retry_after = await anyio.to_thread.run_sync(self._judge, db, address)
+                if retry_after is not None:
+                    replaced = True
+                    response = error_response(
+                        429, "too_many_failures",
+                        f"{self.max_failures} or more failed authentications from {address} in the last {self.window_s:.0f} s; "
+                        f"retry in {retry_after} s (a valid key is still accepted)",
+                    )
+                    response.headers["Retry-After"] = str(retry_after)
+                    await response({"type": "http"}, receive, send)
+                    return
+            if replaced:
+                return  # the 401's body: the 429 went instead
             await send(msg)
 
         await self.app(scope, receive, watching_send)

@@ -11,6 +11,7 @@ from typing import Annotated
 import numpy as np
 from fastapi import APIRouter, Path, Query, Request, Response
 from starlette.concurrency import run_in_threadpool
+from pydantic import AfterValidator
 
 from service.api.deps import DatabaseDep, DbSession, MachineCaller, MaintenanceCaller, MetricsDep, RegistryDep, SettingsDep
 from service.caller import Caller
@@ -25,7 +26,9 @@ from service.api.schemas import (
     ScorePointOut,
     ScoresPage,
     as_dict,
+    check_asset_id,
     parse_body,
+    require_json,
 )
 from service.db import readings as q
 from service.errors import BadInput, NotFound, TooLarge
@@ -37,7 +40,8 @@ router = APIRouter(prefix="/v1", tags=["readings"])
 # schemas to the OpenAPI document's components.
 SELF_PARSED_BODIES = (ReadingsIn,)
 
-AssetId = Annotated[str, Path(pattern=ASSET_ID_PATTERN, description="1-64 characters of A-Z a-z 0-9 _ . -")]
+AssetId = Annotated[str, Path(pattern=ASSET_ID_PATTERN, description="1-64 characters of A-Z a-z 0-9 _ . -, not dots only"),
+                    AfterValidator(check_asset_id)]
 
 
 # The bundled demo model's channels (models/booster-pumps/1); another model has its own.
@@ -72,6 +76,7 @@ async def post_readings(asset_id: AssetId, request: Request, caller: MachineCall
     A new asset is created on its first post."""
     # Only the body is awaited on the event loop; parsing, ingest and the answer run in the
     # thread pool in one hop (DEVELOPERS.md, "The event loop stays free").
+    require_json(request.headers.get("content-type"))
     raw = await request.body()
     return await run_in_threadpool(_post_readings, request, asset_id, caller, raw)
 

@@ -18,9 +18,38 @@ ASSET_ID_PATTERN = r"^[A-Za-z0-9_.\-]{1,64}$"
 M = TypeVar("M", bound=BaseModel)
 
 
-# Epoch seconds a reading may carry: 1970-01-01 up to the end of year 9999 (what datetime
-# can represent); anything else is refused here rather than overflowing later.
-TS_MIN_S, TS_MAX_S = 0.0, 253402300799.0
+# Epoch seconds a reading may carry: from 2000-01-01 (946684800) up to the end of year 9999
+# (what datetime can represent). Earlier times are refused rather than stored as late: a
+# reading dated 1970 comes from a clock that was never set (epoch 0, a reset RTC), and no
+# plant historian this service ingests holds sensor data from before 2000. The future side
+# is bounded by the server clock in the ingest (future_tolerance_s).
+TS_MIN_S, TS_MAX_S = 946684800.0, 253402300799.0
+
+
+def check_asset_id(value: str) -> str:
+    """An asset id names a page and a path segment: not '.', '..' or any other run of dots only."""
+    if value and set(value) == {"."}:
+        raise PydanticCustomError(
+            "asset_id", "{value} is not an asset id: give 1-64 characters of A-Z a-z 0-9 _ . - with at least one that is not a dot",
+            {"value": repr(value)},
+        )
+    return value
+
+
+JSON_TYPES = ("application/json",)
+
+
+def require_json(content_type: str | None) -> None:
+    """415 for a body declared as anything but JSON (application/json or a +json type); a
+    body without a Content-Type is read as JSON."""
+    from service.errors import UnsupportedMediaType
+
+    if content_type is None:
+        return
+    media = content_type.split(";", 1)[0].strip().lower()
+    if media in JSON_TYPES or (media.startswith("application/") and media.endswith("+json")):
+        return
+    raise UnsupportedMediaType(f"the body is declared as {media or 'nothing'!r}; send it as application/json", field="header.content-type")
 
 
 def _parse_ts(value: object) -> float:
@@ -28,9 +57,15 @@ def _parse_ts(value: object) -> float:
         ts = parse_timestamp(value)
     except TimestampError as e:
         raise PydanticCustomError("timestamp", str(e)) from e
-    if not TS_MIN_S <= ts <= TS_MAX_S:
+    if ts < TS_MIN_S:
         raise PydanticCustomError(
-            "timestamp", "{value} is outside 1970-01-01T00:00:00Z .. 9999-12-31T23:59:59Z: give epoch seconds or ISO-8601 with offset",
+            "timestamp", "{value} is before 2000-01-01T00:00:00Z, too old to be a real reading (a clock that was never set?): "
+            "give the time it was measured, as epoch seconds or ISO-8601 with offset",
+            {"value": repr(value)[:40]},
+        )
+    if ts > TS_MAX_S:
+        raise PydanticCustomError(
+            "timestamp", "{value} is outside 2000-01-01T00:00:00Z .. 9999-12-31T23:59:59Z: give epoch seconds or ISO-8601 with offset",
             {"value": repr(value)[:40]},
         )
     return ts

@@ -19,6 +19,7 @@ from sqlalchemy.orm import Session
 
 from service.db.models import ROLES, ApiKey, AuditLog
 from service.db.prepared import prepared
+from service.db.web_sessions import end_for_key
 
 # New keys start "kt_"; keys made before the rename ("ew_...") keep working: a key is found by its hash alone.
 KEY_PREFIX = "kt_"
@@ -44,8 +45,8 @@ def create_key(
         if not assets:
             raise ValueError("--assets needs at least one asset id")
         for a in assets:
-            if not ASSET_ID_RE.match(a):
-                raise ValueError(f"asset id {a!r} is not 1-64 characters of A-Z a-z 0-9 _ . -")
+            if not ASSET_ID_RE.match(a) or set(a) == {"."}:
+                raise ValueError(f"asset id {a!r} is not 1-64 characters of A-Z a-z 0-9 _ . - (not dots only)")
     key = KEY_PREFIX + secrets.token_urlsafe(32)
     row = ApiKey(name=name, role=role, assets=sorted(set(assets)) if assets else None, key_hash=hash_key(key), prefix=key[:10])
     session.add(row)
@@ -104,5 +105,28 @@ def revoke_key(session: Session, *, key_id: int, actor: str) -> bool:
     if row is None or row.revoked_at is not None:
         return False
     row.revoked_at = datetime.now(timezone.utc)
-    session.add(AuditLog(actor=actor, action="key.revoke", target=f"api_key:{key_id}", details={"name": row.name}))
+    ended = end_for_key(session, key_id=key_id)  # its dashboard sessions end with it, on every worker
+    session.add(AuditLog(actor=actor, action="key.revoke", target=f"api_key:{key_id}", details={"name": row.name, "sessions_ended": ended}))
     return True
+
+
+def list_keys(session: Session) -> list[ApiKey]:
+    """Every key, revoked ones included, oldest first (only hashes are stored: no key is shown)."""
+    return list(session.scalars(select(ApiKey).order_by(ApiKey.id)))
+
+
+def get_key(session: Session, *, key_id: int, for_update: bool = False) -> ApiKey | None:
+    return session.get(ApiKey, key_id, with_for_update=for_update)
+
+
+def rotate_key(session: Session, *, key_id: int, actor: str) -> tuple[str, ApiKey] | None:
+    """A new key with the old one's name, role and assets, and the old one revoked (its
+    sessions ended), in the caller's transaction; None when the key is unknown or revoked."""
+    old = session.get(ApiKey, key_id, with_for_update=True)
+    if old is None or old.revoked_at is not None:
+        return None
+    key, row = create_key(session, name=old.name, role=old.role, assets=list(old.assets) if old.assets else None, actor=actor)
+    revoke_key(session, key_id=key_id, actor=actor)
+    session.add(AuditLog(actor=actor, action="key.rotate", target=f"api_key:{key_id}",
+                         details={"name": old.name, "replaced_by": row.id, "prefix": row.prefix}))
+    return key, row

@@ -236,3 +236,63 @@ class AuditLog(Base):
     action: Mapped[str] = mapped_column(String(64))
     target: Mapped[str] = mapped_column(String(256))
     details: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)
+
+
+# --- cluster state (issue 11): what every worker and replica must agree on -------------------
+# The model version each model id serves, counters other processes poll (the registry
+# generation), secrets made once for the whole cluster, dashboard sessions and failed
+# authentications. Nothing here lives only in one process's memory.
+
+
+class ModelBinding(Base):
+    """The version of a model id the whole cluster serves; moved only by a reload (service/db/bindings.py)."""
+
+    __tablename__ = "model_bindings"
+
+    model_id: Mapped[str] = mapped_column(String(64), primary_key=True)
+    version: Mapped[str] = mapped_column(String(64))
+    switched_at: Mapped[datetime] = mapped_column(default=utcnow)
+    switched_by: Mapped[str] = mapped_column(String(128))
+
+
+class ClusterCounter(Base):
+    """A named counter processes poll cheaply (one row by key): `registry_generation` moves on every model switch."""
+
+    __tablename__ = "cluster_counters"
+
+    name: Mapped[str] = mapped_column(String(64), primary_key=True)
+    value: Mapped[int] = mapped_column(BigInteger, default=0)
+
+
+class ClusterSecret(Base):
+    """A random secret made once for the cluster (the dashboard's session signing key when no setting gives one)."""
+
+    __tablename__ = "cluster_secrets"
+
+    name: Mapped[str] = mapped_column(String(64), primary_key=True)
+    value: Mapped[str] = mapped_column(Text)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class WebSessionRow(Base):
+    """A signed-in dashboard session; the cookie carries its id, this row says whether it still holds."""
+
+    __tablename__ = "web_sessions"
+    __table_args__ = (Index("ix_web_sessions_key_id", "key_id"),)
+
+    sid_hash: Mapped[str] = mapped_column(String(64), primary_key=True)  # sha256 hex of the cookie's session id
+    key_id: Mapped[int] = mapped_column(ForeignKey("api_keys.id"))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    expires_at: Mapped[datetime] = mapped_column()
+    ended_at: Mapped[datetime | None] = mapped_column(default=None)  # sign-out or key revocation
+
+
+class AuthFailure(Base):
+    """One failed authentication from a client address (service/api/ratelimit.py counts them across workers)."""
+
+    __tablename__ = "auth_failures"
+    __table_args__ = (Index("ix_auth_failures_address_at", "address", "at_ms"), Index("ix_auth_failures_at", "at_ms"))
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    address: Mapped[str] = mapped_column(String(64))
+    at_ms: Mapped[int] = mapped_column(BigInteger)  # epoch milliseconds, UTC

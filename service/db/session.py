@@ -35,6 +35,17 @@ def sqlite_file(url: str) -> Path | None:
     return Path(u.database)
 
 
+def private_file(path: Path) -> None:
+    """Create `path` empty with mode 0600 if it does not exist yet, so an SQLite database
+    (which holds key hashes and the session secret) is never readable by other users;
+    SQLite gives its -wal and -shm files the database file's mode."""
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except FileExistsError:
+        return
+    os.close(fd)
+
+
 def json_text(value: Any) -> str:
     """JSON columns are written by pydantic-core's serializer (compact, several times faster
     than the json module; the ingest path writes one document per reading) and read back by
@@ -55,6 +66,7 @@ def make_engine(url: str, *, busy_timeout_ms: int = 5000, echo: bool = False) ->
         path = sqlite_file(url)
         if path is not None:
             path.parent.mkdir(parents=True, exist_ok=True)
+            private_file(path)
         kwargs["connect_args"] = {"check_same_thread": False, "timeout": busy_timeout_ms / 1000}
     engine = create_engine(url, **kwargs)
     if u.get_backend_name() == "sqlite":

@@ -9,21 +9,20 @@ from urllib.parse import urlsplit
 from fastapi import Request
 
 from service.caller import PEOPLE_RANK, Caller
-from service.db.session import sqlite_file
+from service.db import web_sessions
 from service.web.queries import key_by_id
 from service.web.session import DEFAULT_MAX_AGE_S, SESSION_COOKIE, SessionCodec, WebSession, resolve_secret
 
 
 def codec_for(request: Request) -> SessionCodec:
-    """One codec per app; its secret comes from resolve_secret (settings, or a file beside
-    the SQLite database shared by all worker processes)."""
+    """One codec per app; its secret comes from resolve_secret (settings, or the secret made
+    once in the database, the same for every worker and replica)."""
     state = request.app.state
     codec = getattr(state, "web_codec", None)
     if codec is None:
         settings = state.settings
         configured = settings.session_secret.get_secret_value() if settings.session_secret is not None else None
-        db_file = sqlite_file(settings.database_url)
-        codec = SessionCodec(resolve_secret(configured, db_file.parent if db_file else None), max_age_s=DEFAULT_MAX_AGE_S)
+        codec = SessionCodec(resolve_secret(configured, lambda: web_sessions.cluster_secret(state.db)), max_age_s=DEFAULT_MAX_AGE_S)
         state.web_codec = codec
     return codec
 
@@ -49,11 +48,15 @@ class WebUser:
 
 
 def current_user(request: Request) -> WebUser | None:
-    """The signed-in person, looked up again by key id; None without a valid session."""
+    """The signed-in person, looked up again by key id; None without a valid session (a
+    cookie whose server-side session was ended by sign-out or key revocation included)."""
     codec = codec_for(request)
     web_session = codec.read(request.cookies.get(SESSION_COOKIE))
     if web_session is None:
         return None
+    with request.app.state.db.engine.connect() as conn:
+        if not web_sessions.holds(conn, sid=web_session.sid, key_id=web_session.key_id):
+            return None
     with request.app.state.db.session() as db:
         row = key_by_id(db, key_id=web_session.key_id)
         if row is None or row.role not in PEOPLE_RANK:

@@ -32,6 +32,7 @@ from service.api.deps import PEOPLE_RANK
 from service.api.errors import http_status
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
+from service.db import web_sessions
 from service.db.keys import find_key
 from service.errors import KilterError
 from service.models_registry import LoadedModel
@@ -246,7 +247,10 @@ def signin(
                 next_path=next,
             )
         key_id = row.id
-    cookie, _ = codec.issue(key_id)
+    cookie, issued = codec.issue(key_id)
+    # Recorded server-side, so every worker accepts it and sign-out or revocation ends it at once.
+    web_sessions.start(request.app.state.db, sid=issued.sid, key_id=key_id,
+                       expires_at=datetime.fromtimestamp(issued.expires_at_s, tz=timezone.utc))
     response = RedirectResponse(_safe_next(next), status_code=303)
     secure = request.url.scheme == "https"
     response.set_cookie(SESSION_COOKIE, cookie, **cookie_options(secure=secure, max_age_s=codec.max_age_s))
@@ -259,6 +263,8 @@ def signout(request: Request, csrf_token: Annotated[str | None, Form(alias=CSRF_
     user, refused = _guard(request, csrf=csrf_token, posting=True)
     if refused is not None and user is not None:
         return refused
+    if user is not None:
+        web_sessions.end(request.app.state.db, sid=user.session.sid)
     response = RedirectResponse("/signin?done=signed_out", status_code=303)
     response.delete_cookie(SESSION_COOKIE, path="/", httponly=True, samesite="strict", secure=request.url.scheme == "https")
     return response

@@ -3,7 +3,9 @@
 The cookie is HttpOnly, SameSite=Strict, Secure when the page came over https, and holds
 only the key's id, a random session id and the issue/expiry times, signed with
 HMAC-SHA256 under the service's session secret. It names no role: every request looks
-the key up again, so revoking a key or changing its role takes effect at once.
+the key up again, so revoking a key or changing its role takes effect at once. The session
+itself is recorded server-side (service/db/web_sessions.py): sign-out and key revocation
+end it for every worker and replica at once, whatever the cookie still says.
 
 CSRF: every state-changing form carries a token derived from the session id
 (HMAC(secret, "csrf:" + sid)); a post whose token does not match is refused. The
@@ -18,11 +20,10 @@ import hashlib
 import hmac
 import json
 import logging
-import os
 import secrets
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
-from pathlib import Path
 
 log = logging.getLogger("kilter.web")
 
@@ -31,7 +32,6 @@ SIGNIN_COOKIE = "kilter_signin"
 CSRF_FIELD = "csrf_token"
 DEFAULT_MAX_AGE_S = 8 * 3600  # one shift
 SIGNIN_MAX_AGE_S = 15 * 60
-SECRET_FILE = "session_secret"
 MIN_SECRET_BYTES = 16
 
 
@@ -120,37 +120,16 @@ def cookie_options(*, secure: bool, max_age_s: int) -> dict[str, object]:
     return {"max_age": max_age_s, "httponly": True, "samesite": "strict", "secure": secure, "path": "/"}
 
 
-def resolve_secret(configured: str | None, folder: Path | None) -> bytes:
-    """The key that signs session cookies.
-
-    `configured` (settings.session_secret) wins. Otherwise a random key is kept in
-    <folder>/session_secret (the SQLite database's folder), created once with mode 0600 and
-    linked into place atomically, so every worker process of one service reads the same
-    key. With neither, each process makes its own and sessions last until it restarts.
-    """
+def resolve_secret(configured: str | None, stored: Callable[[], str]) -> bytes:
+    """The key that signs session cookies: `configured` (settings.session_secret) when
+    given, else `stored()`, the secret made once in the database and read by every worker and
+    replica (service/db/web_sessions.cluster_secret)."""
     if configured:
         secret = configured.encode("utf-8")
         if len(secret) < MIN_SECRET_BYTES:
             raise ValueError(f"KILTER_SESSION_SECRET must be at least {MIN_SECRET_BYTES} characters, got {len(secret)}")
         return secret
-    if folder is None:
-        log.warning("no session_secret set and no SQLite folder to keep one in: dashboard sessions last until this process restarts")
-        return secrets.token_bytes(32)
-    path = Path(folder) / SECRET_FILE
-    if not path.exists():
-        folder.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(f".{SECRET_FILE}.{os.getpid()}.{secrets.token_hex(4)}")
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-        try:
-            with os.fdopen(fd, "w") as f:
-                f.write(secrets.token_hex(32))
-            try:
-                os.link(tmp, path)  # fails if another process got there first: then use theirs
-            except FileExistsError:
-                pass
-        finally:
-            tmp.unlink(missing_ok=True)
-    text = path.read_text(encoding="utf-8").strip()
+    text = stored().strip()
     if len(text) < MIN_SECRET_BYTES:
-        raise ValueError(f"{path}: the session secret in this file is shorter than {MIN_SECRET_BYTES} characters; delete it to make a new one")
+        raise ValueError(f"the session secret stored in the database is shorter than {MIN_SECRET_BYTES} characters")
     return text.encode("utf-8")

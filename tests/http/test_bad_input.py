@@ -154,3 +154,52 @@ def test_body_over_the_byte_limit_is_413_before_parsing(tmp_path, tiny_dir) -> N
         assert_nothing_stored(env)
     finally:
         gen.close()
+
+
+@pytest.mark.parametrize("asset", ["...", "%2E", "%2E%2E", ".%2E.."])
+def test_asset_ids_of_dots_only_are_refused(env, asset: str) -> None:
+    """'.' and '..' are path segments, not names (the dashboard would link to another page)."""
+    r = env.client.post(f"/v1/assets/{asset}/readings", json={"readings": readings(range(2))}, headers=env.auth("machine"))
+    check(r, 422, "path.asset_id", "not an asset id", "not a dot")
+    assert_nothing_stored(env)
+
+
+@pytest.mark.parametrize("ts", [0, 86400, "1970-01-01T00:00:05Z", "1999-12-31T23:59:59Z"])
+def test_implausibly_old_timestamps_are_refused(env, ts) -> None:
+    """Before 2000-01-01 is a clock that was never set, not a late reading (service/api/schemas.py)."""
+    batch = readings(range(3))
+    batch[1]["ts"] = ts
+    check(env.post("pump-01", batch), 422, "body.readings[1].ts", "before 2000-01-01")
+    assert_nothing_stored(env)
+
+
+@pytest.mark.parametrize("content_type", ["text/plain", "application/x-www-form-urlencoded", "text/json"])
+def test_a_body_not_declared_as_json_is_415(env, content_type: str) -> None:
+    text = json.dumps({"readings": readings(range(2))})
+    r = env.client.post("/v1/assets/pump-01/readings", content=text.encode(), headers={**env.auth("machine"), "Content-Type": content_type})
+    check(r, 415, "header.content-type", "application/json", content_type)
+    assert_nothing_stored(env)
+    r = env.client.post("/v1/assets/pump-01/readings", content=text.encode(),
+                        headers={**env.auth("machine"), "Content-Type": "application/json; charset=utf-8"})
+    assert r.status_code == 200, r.text
+
+
+@pytest.mark.parametrize("path", ["/v1/assets/pump-01/readings", "/v1/score", "/v1/assets/pump-01/threshold/preview"])
+def test_a_chunked_body_over_the_byte_limit_is_413_on_every_route(tmp_path, tiny_dir, path: str) -> None:
+    """No Content-Length to refuse up front: the cap is met while the route reads the body,
+    whether the route parses it itself or FastAPI does."""
+    from service_env import start_env
+
+    gen = start_env(tmp_path, tiny_dir, max_body_bytes=4096)
+    env = next(gen)
+    try:
+        def chunks():
+            yield b'{"windows": ['
+            for _ in range(100):
+                yield b"[[1,2,3,4,5,6]]," * 10
+
+        role = "operator" if "preview" in path else "machine"
+        r = env.client.post(path, content=chunks(), headers={**env.auth(role), "Content-Type": "application/json"})
+        check(r, 413, None, "4096-byte limit")
+    finally:
+        gen.close()

@@ -133,3 +133,38 @@ def test_models_need_an_admin(svc: Service):
         assert svc.client.post("/v1/models/reload", headers=svc.h(role)).status_code == 403
     assert svc.client.get("/v1/models").status_code == 401
     assert svc.client.post("/v1/models/reload").status_code == 401
+
+
+def _points(target: str):
+    def edit(manifest: dict, _folder: Path) -> None:
+        manifest["onnx_file"] = target
+
+    return edit
+
+
+def _symlink_out(manifest: dict, folder: Path) -> None:
+    outside = folder.parent.parent / "elsewhere.onnx"
+    (folder / "model.onnx").rename(outside)
+    (folder / "model.onnx").symlink_to(outside)
+
+
+@pytest.mark.parametrize(
+    ("edit", "reason"),
+    [
+        (_points("../1/model.onnx"), "onnx_file"),
+        (_points("/etc/passwd"), "onnx_file"),
+        (_points(".."), "onnx_file"),
+        (_symlink_out, "inside the model folder"),
+    ],
+)
+def test_a_manifest_cannot_point_outside_its_folder(svc: Service, model_dir: Path, edit, reason):
+    """The graph a manifest names is a file of its own folder: a path to another version's
+    graph, to any file on the machine, or a symlink leading out is refused before it is read."""
+    old = served(svc)
+    new_version(model_dir, "4", edit)
+    r = svc.client.post("/v1/models/reload", headers=svc.h("admin"))
+    assert r.status_code == 409, r.text
+    message = r.json()["error"]["message"]
+    assert reason in message and "/4" in message
+    assert "sha256" not in message  # nothing outside the folder was hashed
+    assert served(svc) == old

@@ -71,6 +71,20 @@ def test_compose_file_is_consistent() -> None:
             substitute(env["KILTER_DATABASE_URL"], {})
         assert env["KILTER_AUTO_UPGRADE"] == "false"
     assert services["migrate"]["command"][:3] == ["kilter", "db", "upgrade"]
+    # Every setting the replicas must agree on is set, once, for both (one anchor), and parses.
+    from service.settings import SHARED_SETTINGS, Settings
+
+    envs = [services[n]["environment"] for n in REPLICAS]
+    assert envs[0] == envs[1]
+    missing = [n for n in SHARED_SETTINGS if f"KILTER_{n.upper()}" not in envs[0]]
+    assert not missing, f"compose.yaml leaves these shared settings to each replica's defaults: {missing}"
+    parsed = Settings(_env_file=None, **{n: substitute(str(envs[0][f"KILTER_{n.upper()}"]), {"KILTER_DB_PASSWORD": "pw"})
+                                         for n in SHARED_SETTINGS if n != "asset_models"})
+    assert parsed.auto_upgrade is False
+    assert "FORWARDED_ALLOW_IPS" not in envs[0], "uvicorn's own trust of forwarded headers is off; KILTER_TRUSTED_PROXIES decides"
+    # The only proxy trusted is the proxy: its fixed address on the replicas' network.
+    proxy_address = services["proxy"]["networks"]["backend"]["ipv4_address"]
+    assert parsed.trusted_proxy_list == [proxy_address]
     assert services["migrate"]["depends_on"]["db"]["condition"] == "service_healthy"
     for name in REPLICAS:
         svc = services[name]

@@ -1,18 +1,24 @@
-"""Failed authentication is rate-limited per client address; the limit spares other
-addresses, health checks, and lifts once the failures age out of the window."""
+"""Failed authentication is limited per client address, counted in the database across
+workers; a correct key is never refused; X-Forwarded-For counts only from a trusted proxy."""
 
 from __future__ import annotations
 
 import asyncio
-from concurrent.futures import ThreadPoolExecutor
+import sqlite3
 from collections.abc import Iterator
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
-from typing import Any
 
+import httpx
 import pytest
+from fastapi.testclient import TestClient
 
+import support
 from inproc import App, start_app
-from service.api.ratelimit import FailedAuthLimit
+from service.app import create_app
+from service.settings import Settings
+
+WRONG = {"Authorization": "Bearer ew_not-a-real-key"}
 
 
 @pytest.fixture
@@ -20,56 +26,67 @@ def limited(tmp_path: Path) -> Iterator[App]:
     yield from start_app(tmp_path, auth_fail_limit=5, auth_fail_window_s=60)
 
 
-def test_wrong_keys_from_one_address_are_refused_after_the_limit(limited: App) -> None:
+def test_wrong_keys_are_refused_after_the_limit_and_a_correct_key_still_works(limited: App) -> None:
     app = limited
-    wrong = {"Authorization": "Bearer ew_not-a-real-key"}
-    codes = [app.client.get("/v1/assets", headers=wrong).status_code for _ in range(5)]
+    codes = [app.client.get("/v1/assets", headers=WRONG).status_code for _ in range(5)]
     assert codes == [401] * 5
-    r = app.client.get("/v1/assets", headers=wrong)
-    assert r.status_code == 429 and int(r.headers["Retry-After"]) >= 1
+    r = app.client.get("/v1/assets", headers=WRONG)
+    assert r.status_code == 429 and 1 <= int(r.headers["Retry-After"]) <= 60
     assert r.json()["error"]["code"] == "too_many_failures"
-    # While blocked, the right key from the same address waits too (that is the brake)...
-    assert app.client.get("/v1/assets", headers=app.auth("maintenance")).status_code == 429
-    # ...but liveness and readiness stay reachable for the orchestrator.
+    # The right key from the same address is served: others' failures do not lock it out.
+    assert app.client.get("/v1/assets", headers=app.auth("maintenance")).status_code == 200
     assert app.client.get("/healthz").status_code == 200
-    assert app.client.get("/readyz").status_code == 200
+    assert app.client.get("/v1/assets").status_code == 429  # no key at all fails too
+    # Failures beyond the limit are not stored: the table holds at most the limit per address.
+    with sqlite3.connect(app.db_path) as c:
+        assert c.execute("SELECT COUNT(*) FROM auth_failures").fetchone()[0] == 5
 
 
-def test_successes_do_not_count_and_keys_from_elsewhere_pass(limited: App) -> None:
-    app = limited
-    for _ in range(20):
-        assert app.client.get("/v1/assets", headers=app.auth("maintenance")).status_code == 200
-    assert app.client.get("/v1/assets", headers={"Authorization": "Bearer wrong"}).status_code == 401
+def test_the_count_is_shared_by_every_worker(tmp_path: Path) -> None:
+    """Two apps on one database stand for two worker processes: failures on either count."""
+    url = f"sqlite:///{tmp_path / 'shared.db'}"
+    model_dir = support.build_model(tmp_path / "models")
+    keys = support.prepare_database(url)
+    settings = Settings(_env_file=None, database_url=url, model_dir=model_dir, retention_days=0, auth_fail_limit=6)
+    with TestClient(create_app(settings)) as a, TestClient(create_app(settings)) as b:
+        codes = [(a, b)[i % 2].get("/v1/assets", headers=WRONG).status_code for i in range(8)]
+        assert codes == [401] * 6 + [429, 429]
+        assert b.get("/v1/assets", headers={"Authorization": f"Bearer {keys['maintenance']}"}).status_code == 200
 
 
-def _call(mw: FailedAuthLimit, address: str, path: str = "/v1/assets") -> int:
-    """One request through the middleware alone, from `address`; returns the status sent."""
-    sent: list[dict[str, Any]] = []
+def _from(app: object, peer: str, headers: dict[str, str]) -> int:
+    """One request to the (started) app as if from TCP peer `peer`."""
 
-    async def receive() -> dict[str, Any]:
-        return {"type": "http.request", "body": b"", "more_body": False}
+    async def go() -> int:
+        transport = httpx.ASGITransport(app=app, client=(peer, 40000))  # type: ignore[arg-type]
+        async with httpx.AsyncClient(transport=transport, base_url="http://kilter.test") as client:
+            return (await client.get("/v1/assets", headers=headers)).status_code
 
-    async def send(msg: dict[str, Any]) -> None:
-        sent.append(msg)
-
-    scope = {"type": "http", "method": "GET", "path": path, "headers": [], "client": (address, 5000)}
-    # A thread of its own, so a loop already running in this thread (e.g. left by another
-    # test's library) cannot refuse asyncio.run.
     with ThreadPoolExecutor(max_workers=1) as pool:
-        pool.submit(asyncio.run, mw(scope, receive, send)).result()
-    return int(sent[0]["status"])
+        return pool.submit(asyncio.run, go()).result()
 
 
-def test_window_slides_and_addresses_are_separate() -> None:
-    now = [1000.0]
+def test_forwarded_for_counts_only_from_a_trusted_proxy(tmp_path: Path) -> None:
+    url = f"sqlite:///{tmp_path / 'xff.db'}"
+    model_dir = support.build_model(tmp_path / "models")
+    support.prepare_database(url)
+    settings = Settings(_env_file=None, database_url=url, model_dir=model_dir, retention_days=0,
+                        auth_fail_limit=5, trusted_proxies="10.0.0.0/24")
+    app = create_app(settings)
+    with TestClient(app):
+        # An untrusted peer varying X-Forwarded-For is still one address: blocked after 5.
+        codes = [_from(app, "192.0.2.1", {**WRONG, "X-Forwarded-For": f"198.51.100.{i}"}) for i in range(30)]
+        assert codes == [401] * 5 + [429] * 25
+        # Through the trusted proxy, each forwarded client has its own count.
+        assert [_from(app, "10.0.0.3", {**WRONG, "X-Forwarded-For": "203.0.113.7"}) for _ in range(6)] == [401] * 5 + [429]
+        assert _from(app, "10.0.0.3", {**WRONG, "X-Forwarded-For": "203.0.113.8"}) == 401
+    with sqlite3.connect(tmp_path / "xff.db") as c:
+        by_address = dict(c.execute("SELECT address, COUNT(*) FROM auth_failures GROUP BY address").fetchall())
+    assert by_address == {"192.0.2.1": 5, "203.0.113.7": 5, "203.0.113.8": 1}
 
-    async def always_401(scope: Any, receive: Any, send: Any) -> None:
-        await send({"type": "http.response.start", "status": 401, "headers": []})
-        await send({"type": "http.response.body", "body": b""})
 
-    mw = FailedAuthLimit(always_401, max_failures=3, window_s=10.0, clock=lambda: now[0])
-    assert [_call(mw, "10.0.0.1") for _ in range(3)] == [401, 401, 401]
-    assert _call(mw, "10.0.0.1") == 429
-    assert _call(mw, "10.0.0.2") == 401  # another address has its own count
-    now[0] += 10.5  # the failures age out of the window
-    assert _call(mw, "10.0.0.1") == 401
+def test_a_wildcard_proxy_setting_is_refused() -> None:
+    with pytest.raises(ValueError, match="believe X-Forwarded-For from anyone"):
+        Settings(_env_file=None, trusted_proxies="*")
+    with pytest.raises(ValueError, match="not an IP address"):
+        Settings(_env_file=None, trusted_proxies="proxy.local")

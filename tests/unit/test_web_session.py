@@ -66,30 +66,24 @@ def test_short_secret_rejected() -> None:
         SessionCodec(b"short")
 
 
-def test_secret_from_settings_wins_and_must_be_long_enough(tmp_path) -> None:
+def test_secret_from_settings_wins_and_must_be_long_enough() -> None:
     from service.web.session import resolve_secret
 
-    assert resolve_secret("a-configured-secret-value", tmp_path) == b"a-configured-secret-value"
-    assert not (tmp_path / "session_secret").exists()
+    asked: list[int] = []
+
+    def stored() -> str:
+        asked.append(1)
+        return "a" * 64
+
+    assert resolve_secret("a-configured-secret-value", stored) == b"a-configured-secret-value"
+    assert not asked  # the database is not asked when the settings give a secret
     with pytest.raises(ValueError, match="at least 16"):
-        resolve_secret("short", tmp_path)
+        resolve_secret("short", stored)
 
 
-def test_secret_file_is_made_once_private_and_shared(tmp_path) -> None:
-    import stat
-
+def test_without_a_setting_the_stored_secret_is_used_and_checked() -> None:
     from service.web.session import resolve_secret
 
-    folder = tmp_path / "var"
-    first = resolve_secret(None, folder)
-    assert len(first) == 64
-    mode = stat.S_IMODE((folder / "session_secret").stat().st_mode)
-    assert mode == 0o600
-    assert resolve_secret(None, folder) == first  # a second worker process reads the same key
-    assert [p.name for p in folder.iterdir()] == ["session_secret"]  # no temporary files left
-
-
-def test_without_folder_or_setting_each_call_makes_a_new_secret() -> None:
-    from service.web.session import resolve_secret
-
-    assert resolve_secret(None, None) != resolve_secret(None, None)
+    assert resolve_secret(None, lambda: "b" * 64) == b"b" * 64
+    with pytest.raises(ValueError, match="shorter than 16"):
+        resolve_secret(None, lambda: "short")
