@@ -8,7 +8,9 @@ in the answer. Keys are created with `kilter keys create` (it prints the key alo
 
 from __future__ import annotations
 
-from fastapi import APIRouter
+from typing import Annotated
+
+from fastapi import APIRouter, Path
 from sqlalchemy.orm import Session
 
 from service.api.deps import AdminCaller, DbSession, WriteSession
@@ -23,6 +25,9 @@ router = APIRouter(prefix="/v1/keys", tags=["keys"])
 def key_out(row: ApiKey) -> KeyOut:
     return KeyOut(id=row.id, name=row.name, role=row.role, assets=row.assets, prefix=row.prefix,
                   created_at=row.created_at, revoked_at=row.revoked_at)
+
+
+KeyId = Annotated[int, Path(ge=1, le=2**63 - 1, description="key id, as GET /v1/keys lists it")]
 
 
 def _live(session: Session, key_id: int) -> ApiKey:
@@ -40,7 +45,7 @@ def list_keys(session: DbSession, _caller: AdminCaller) -> KeyList:
 
 
 @router.post("/{key_id}/revoke", response_model=KeyOut)
-def revoke_key(key_id: int, session: WriteSession, caller: AdminCaller) -> KeyOut:
+def revoke_key(key_id: KeyId, session: WriteSession, caller: AdminCaller) -> KeyOut:
     _live(session, key_id)
     q.revoke_key(session, key_id=key_id, actor=caller.name)
     session.commit()
@@ -50,7 +55,7 @@ def revoke_key(key_id: int, session: WriteSession, caller: AdminCaller) -> KeyOu
 
 
 @router.post("/{key_id}/rotate", response_model=RotatedKey)
-def rotate_key(key_id: int, session: WriteSession, caller: AdminCaller) -> RotatedKey:
+def rotate_key(key_id: KeyId, session: WriteSession, caller: AdminCaller) -> RotatedKey:
     _live(session, key_id)
     rotated = q.rotate_key(session, key_id=key_id, actor=caller.name)
     assert rotated is not None
