@@ -52,6 +52,9 @@ def list_alerts(
     until: Annotated[UtcIn | None, Query()] = None,
     limit: Annotated[int, Query(ge=1, le=q.MAX_PAGE)] = 50,
     cursor: Annotated[str | None, Query(max_length=200, description="next_cursor of the previous page")] = None,
+    sort: Annotated[
+        str, Query(description="priority: active, unacknowledged, critical first, newest first within each; newest: by opened_at")
+    ] = "priority",
 ) -> AlertPage:
     rows, next_cursor = q.list_alerts(
         db,
@@ -64,8 +67,10 @@ def list_alerts(
         limit=limit,
         cursor=cursor,
         allowed_assets=caller.assets,
+        sort=sort,
     )
-    return AlertPage(items=[alert_out(a) for a in rows], next_cursor=next_cursor)
+    warnings = q.warning_levels(db, rows)
+    return AlertPage(items=[alert_out(a, warnings.get(a.threshold_version_id or 0)) for a in rows], next_cursor=next_cursor)
 
 
 @router.get("/alerts/{alert_id}", response_model=AlertDetail)
@@ -82,7 +87,7 @@ def _window_period(registry: RegistryDep, model_id: str) -> float | None:
 
 
 def _detail(detail: q.AlertDetail, registry: RegistryDep) -> AlertDetail:
-    base = alert_out(detail.alert)
+    base = alert_out(detail.alert, detail.threshold.warning if detail.threshold is not None else None)
     threshold = (
         threshold_out(detail.threshold, _window_period(registry, detail.threshold.model_id)) if detail.threshold is not None else None
     )
@@ -94,7 +99,7 @@ def _detail(detail: q.AlertDetail, registry: RegistryDep) -> AlertDetail:
 def acknowledge(alert_id: AlertId, db: WriteSession, caller: MaintenanceCaller, body: AcknowledgeIn | None = None) -> AlertOut:
     q.get_alert(db, alert_id=alert_id, allowed_assets=caller.assets)
     alert = q.acknowledge(db, alert_id=alert_id, actor=caller.name, note=body.note if body else None)
-    out = alert_out(alert)
+    out = alert_out(alert, q.warning_levels(db, [alert]).get(alert.threshold_version_id or 0))
     db.commit()
     return out
 
@@ -103,7 +108,7 @@ def acknowledge(alert_id: AlertId, db: WriteSession, caller: MaintenanceCaller, 
 def close(alert_id: AlertId, body: CloseIn, db: WriteSession, caller: MaintenanceCaller) -> AlertOut:
     q.get_alert(db, alert_id=alert_id, allowed_assets=caller.assets)
     alert = q.close(db, alert_id=alert_id, actor=caller.name, outcome=body.outcome, note=body.note)
-    out = alert_out(alert)
+    out = alert_out(alert, q.warning_levels(db, [alert]).get(alert.threshold_version_id or 0))
     db.commit()
     return out
 

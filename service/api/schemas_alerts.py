@@ -64,6 +64,8 @@ class AlertOut(BaseModel):
     duration_s: float = Field(description="opened to returned, else to last seen")
     peak_score: float
     peak_at: UtcOut
+    warning_level: float | None = Field(default=None, description="the warning level in force when it opened")
+    peak_ratio: float | None = Field(default=None, description="peak_score / warning_level: 4.2 reads '4.2x warning'")
     top_channels: list[ChannelShare]
     model_id: str
     model_version: str
@@ -318,8 +320,9 @@ def _seconds(a: datetime, b: datetime) -> float:
     return (b - a).total_seconds()
 
 
-def alert_out(alert: Any) -> AlertOut:
-    """An alerts row (service.db.models.Alert) as its response model."""
+def alert_out(alert: Any, warning_level: float | None = None) -> AlertOut:
+    """An alerts row (service.db.models.Alert) as its response model; `warning_level` is the
+    warning level in force when it opened (service.db.alerts.warning_levels)."""
     end = alert.returned_at or alert.last_seen_at
     return AlertOut(
         id=alert.id,
@@ -333,6 +336,8 @@ def alert_out(alert: Any) -> AlertOut:
         duration_s=max(_seconds(alert.opened_at, end), 0.0),
         peak_score=alert.peak_score,
         peak_at=alert.peak_at,
+        warning_level=warning_level,
+        peak_ratio=alert.peak_score / warning_level if warning_level else None,
         top_channels=[ChannelShare(channel=c["channel"], share=float(c["share"])) for c in (alert.top_channels or [])],
         model_id=alert.model_id,
         model_version=alert.model_version,

@@ -16,7 +16,7 @@ from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
 from service.db.models import Alert
-from service.errors import ModelError, NotFound
+from service.errors import KilterError, ModelError, NotFound
 from service.models_registry import LoadedModel, ModelRegistry
 from service.retune import calibration_set, expected_false_alarms_per_week, levels_for_budget, preview
 from service.settings import Settings
@@ -44,8 +44,15 @@ def silent_after(settings: Settings, registry: ModelRegistry) -> dict[str, float
     return {m.model_id: settings.silent_after_windows * m.manifest.window_period_s for m in registry.models()}
 
 
-def alert_row(a: Alert) -> dict[str, Any]:
-    """One row of the alert list."""
+def fmt_ratio(peak: float, warning: float | None) -> str:
+    """The peak as a multiple of the warning level in force: '4.2x warning'."""
+    if not warning:
+        return ""
+    return f"{views.fmt_score(peak / warning)}x warning"
+
+
+def alert_row(a: Alert, warning: float | None = None) -> dict[str, Any]:
+    """One row of the alert list; `warning` is the level in force when it opened."""
     end = a.returned_at or a.last_seen_at
     top = a.top_channels[0]["channel"] if a.top_channels else "–"
     return {
@@ -57,7 +64,78 @@ def alert_row(a: Alert) -> dict[str, Any]:
         "opened": views.fmt_time(a.opened_at),
         "duration": views.fmt_duration((end - a.opened_at).total_seconds()),
         "peak": views.fmt_score(a.peak_score),
+        "ratio": fmt_ratio(a.peak_score, warning),
         "top_channel": top,
+    }
+
+
+STATE_PHRASES = {"unacknowledged": "need acknowledging", "acknowledged": "acknowledged", "closed": "closed"}
+LIST_ORDER = {
+    "priority": "active before returned, unacknowledged before acknowledged, critical before warning, then newest first; closed last",
+    "newest": "newest first",
+}
+
+
+def alert_list(
+    db: Session, *, user: WebUser, filters: dict[str, str], cursor: str | None, page_size: int, sort: str
+) -> dict[str, Any]:
+    """The alert list page (and its live fragment): one page of rows in the asked order, the
+    counts per state (following the asset filter) as filter links, pager links."""
+    flashes: list[tuple[str, str]] = []
+    rows: list[Alert] = []
+    next_cursor = None
+    sort = sort if sort in LIST_ORDER else "priority"
+    try:
+        rows, next_cursor = alert_q.list_alerts(
+            db,
+            asset_id=filters["asset"] or None,
+            state=filters["state"] or None,
+            severity=filters["severity"] or None,
+            since=views.parse_utc_local(filters["since"], "Opened from"),
+            until=views.parse_utc_local(filters["until"], "Opened before"),
+            limit=page_size,
+            cursor=cursor or None,
+            allowed_assets=user.caller.assets,
+            sort=sort,
+        )
+    except views.FormValueError as e:
+        flashes.append(("error", str(e)))
+    except KilterError as e:
+        flashes.append(("error", e.message))
+    scope = user.caller.assets
+    if filters["asset"]:  # the tallies follow the asset filter
+        scope = frozenset({filters["asset"]}) if scope is None else scope & {filters["asset"]}
+    counts = alert_q.count_by_state(db, allowed_assets=scope)
+    ids = [a.asset_id for a in readings_q.list_assets(db, now=datetime.now(timezone.utc), silent_after_s={})]
+    kept = {k: v for k, v in filters.items() if v}
+    if sort != "priority":
+        kept["sort"] = sort
+    tallies = [
+        {
+            "state": name,
+            "count": counts.get(name, 0),
+            "phrase": STATE_PHRASES[name],
+            "href": "/alerts?" + urlencode({**{k: v for k, v in kept.items() if k != "state"}, "state": name}),
+            "current": filters["state"] == name,
+        }
+        for name in STATE_PHRASES
+    ]
+    described = ", ".join(f"{k} {v}" for k, v in kept.items() if k != "sort") or "no filters"
+    warnings = alert_q.warning_levels(db, rows)
+    return {
+        "page_title": "Alerts",
+        "section": "alerts",
+        "rows": [alert_row(a, warnings.get(a.threshold_version_id or 0)) for a in rows],
+        "counts": counts,
+        "tallies": tallies,
+        "filters": filters,
+        "sort": sort,
+        "order_text": LIST_ORDER[sort],
+        "asset_ids": ids,
+        "caption": f"{len(rows)} alert{'' if len(rows) == 1 else 's'} on this page ({described}); {LIST_ORDER[sort]}.",
+        "next_href": "/alerts?" + urlencode({**kept, "cursor": next_cursor}) if next_cursor else None,
+        "first_href": "/alerts?" + urlencode(kept) if cursor else None,
+        "flashes": flashes,
     }
 
 
@@ -133,7 +211,7 @@ def alert_detail(db: Session, registry: ModelRegistry, *, alert_id: int, user: W
         "page_title": f"Alert #{a.id}",
         "section": "alerts",
         "a": {
-            **alert_row(a),
+            **alert_row(a, th.warning if th else None),
             "returned": views.fmt_time(a.returned_at),
             "duration": views.fmt_duration(length.total_seconds()) + (" so far" if a.condition == "active" else ""),
             "peak_at": views.fmt_time(a.peak_at) + " UTC",

@@ -273,59 +273,15 @@ def alerts_page(
     since: Annotated[str | None, Query(max_length=40)] = None,
     until: Annotated[str | None, Query(max_length=40)] = None,
     cursor: Annotated[str | None, Query(max_length=200)] = None,
+    sort: Annotated[str | None, Query(max_length=16)] = None,
 ) -> Response:
     user, refused = _guard(request)
     if refused is not None or user is None:
         return refused  # type: ignore[return-value]
     filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
-    flashes: list[tuple[str, str]] = []
-    rows: list[Any] = []
-    next_cursor = None
     with _read_session(request) as db:
-        try:
-            since_dt = views.parse_utc_local(since, "Opened from")
-            until_dt = views.parse_utc_local(until, "Opened before")
-            rows, next_cursor = alert_q.list_alerts(
-                db,
-                asset_id=asset or None,
-                state=state or None,
-                severity=severity or None,
-                since=since_dt,
-                until=until_dt,
-                limit=PAGE_SIZE,
-                cursor=cursor or None,
-                allowed_assets=user.caller.assets,
-            )
-        except views.FormValueError as e:
-            flashes.append(("error", str(e)))
-        except KilterError as e:
-            flashes.append(("error", e.message))
-        scope = user.caller.assets
-        if asset:  # the tallies follow the asset filter
-            scope = frozenset({asset}) if scope is None else scope & {asset}
-        counts = alert_q.count_by_state(db, allowed_assets=scope)
-        ids = [a.asset_id for a in readings_q.list_assets(db, now=datetime.now(timezone.utc), silent_after_s={})]
-    kept = {k: v for k, v in filters.items() if v}
-    tally_hrefs = {s: "/alerts?" + urlencode({**{k: v for k, v in kept.items() if k != "state"}, "state": s}) for s in counts}
-    described = ", ".join(f"{k} {v}" for k, v in kept.items()) or "no filters"
-    return _render(
-        request,
-        "alerts.html",
-        {
-            "page_title": "Alerts",
-            "section": "alerts",
-            "rows": [pages.alert_row(a) for a in rows],
-            "counts": counts,
-            "tally_hrefs": tally_hrefs,
-            "filters": filters,
-            "asset_ids": ids,
-            "caption": f"{len(rows)} alert{'' if len(rows) == 1 else 's'} on this page ({described}); newest first.",
-            "next_href": "/alerts?" + urlencode({**kept, "cursor": next_cursor}) if next_cursor else None,
-            "first_href": "/alerts?" + urlencode(kept) if cursor else None,
-            "flashes": flashes,
-        },
-        user=user,
-    )
+        context = pages.alert_list(db, user=user, filters=filters, cursor=cursor, page_size=PAGE_SIZE, sort=sort or "priority")
+    return _render(request, "alerts.html", context, user=user)
 
 
 @router.get("/alerts/{alert_id}", response_class=HTMLResponse)

@@ -37,7 +37,7 @@ def test_maintenance_filters_opens_acknowledges_and_closes_an_alert(page: Any, s
     )[0]
     shots.both(page, "alerts-list")
     unack = served.rows("SELECT COUNT(*) FROM alerts WHERE state = 'unacknowledged'")[0][0]
-    assert page.locator('.statebar [data-state="unacknowledged"]').inner_text() == str(unack)
+    assert page.locator('.tallies [data-state="unacknowledged"]').inner_text() == str(unack)
 
     # Filter by asset and severity, submitting from the keyboard.
     page.get_by_label("Asset").select_option(asset)

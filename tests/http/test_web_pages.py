@@ -191,7 +191,16 @@ def test_alert_list_filters_and_reports_bad_dates(env: Env) -> None:
     page = env.client.get("/alerts?asset=pump-02")
     assert re.findall(r'<tr data-alert-id="(\d+)"', page.text) == [str(env.rows("SELECT id FROM alerts WHERE asset_id = 'pump-02'")[0][0])]
     assert 'data-state="unacknowledged">1<' in page.text  # the counts follow the asset filter
-    assert 'data-state="unacknowledged">2<' in env.client.get("/alerts").text
+    whole = env.client.get("/alerts").text
+    assert 'data-state="unacknowledged">2<' in whole
+    # Plain counts inside the filter form, each a link that filters by its state.
+    tallies = re.search(r'<p class="tallies".*?</p>', whole, re.S).group(0)
+    start = whole.index('<form class="filters')
+    assert start < whole.index('<p class="tallies"') < whole.index("</form>", start)
+    assert re.findall(r'href="/alerts\?state=(\w+)"', tallies) == ["unacknowledged", "acknowledged", "closed"]
+    assert "2</span> need acknowledging" in tallies and "0</span> closed" in tallies and "statebar" not in whole
+    # The condition beside the state, the peak as a multiple of the warning level (10.7 / 4).
+    assert whole.count('<span class="cond cond-returned">returned</span>') == 2 and "2.67x warning</span>" in whole  # condition column, peak as a multiple of warning
     page = env.client.get("/alerts?since=yesterday")
     assert page.status_code == 200 and "Opened from" in page.text and "not a date and time" in page.text
 
