@@ -12,10 +12,12 @@ proposed timing, critical at the same ratio), or stay as they are.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from typing import Annotated
 
 from fastapi import APIRouter, Path
+from sqlalchemy.orm import Session
 
 from service.alerting import AlertRule
 from service.api.deps import DbSession, MaintenanceCaller, OperatorCaller, RegistryDep, WriteSession
@@ -23,6 +25,7 @@ from service.api.schemas_alerts import (
     BudgetOut,
     PreviewIn,
     PreviewOut,
+    RiskOut,
     ShelveIn,
     ShelveOut,
     StoredAlertCounts,
@@ -39,7 +42,8 @@ from service.db.alerts import from_ms, just_after
 from service.db.models import Asset, ThresholdVersion
 from service.errors import BadInput
 from service.models_registry import LoadedModel, ModelRegistry
-from service.retune import TIMING_FIELDS, Proposal, ProposedAlert, calibration_set, preview, propose_rule
+from service.retune import TIMING_FIELDS, PastAlert, Preview, Proposal, ProposedAlert, calibration_set, preview, propose_rule
+from service.retune_risk import MIN_HISTORY_DAYS, MIN_RISKY_REASON, ConfirmationMissing, RetuneRisk, assess, check_confirmation
 
 router = APIRouter(prefix="/v1/assets/{asset_id}", tags=["thresholds"])
 
@@ -128,26 +132,75 @@ def _would_open(alerts: list[ProposedAlert]) -> list[WouldOpenOut]:
     ]
 
 
+@dataclass(frozen=True)
+class Previewed:
+    """A proposal replayed over the asset's stored scores, with its risks (service/retune_risk.py)."""
+
+    since: datetime
+    until: datetime
+    past: list[PastAlert]
+    result: Preview
+    risk: RetuneRisk
+
+
+def preview_change(
+    db: Session, *, asset: Asset, model: LoadedModel, current: AlertRule, proposed: AlertRule,
+    since: datetime | None = None, until: datetime | None = None,
+) -> Previewed:
+    """The preview the endpoint answers and the check a change must pass (the PUT and the
+    dashboard's Apply): the asset's stored scores in [since, until) replayed under both rules.
+    Default range: the PREVIEW_DEFAULT before the asset's newest stored window."""
+    if until is None:
+        # The asset's newest stored window (now, for a live asset; the replay's end for history).
+        until = just_after(asset.last_window_end_ms) if asset.last_window_end_ms is not None else datetime.now(timezone.utc)
+    since = since or until - PREVIEW_DEFAULT
+    if until <= since:
+        raise BadInput("until must be after since", field="body.until")
+    series = q.score_series(db, asset_id=asset.asset_id, model_id=model.model_id, since=since, until=until)
+    past = q.past_alerts(db, asset_id=asset.asset_id, since=since, until=until)
+    try:
+        cal = calibration_set(model.calibration, model.manifest)
+    except ValueError:
+        cal = None
+    result = preview(series, proposed, current, past, cal)
+    risk = assess(result, past, current_warning=current.warning, window_period_s=model.manifest.window_period_s)
+    return Previewed(since, until, past, result, risk)
+
+
+def confirm_change(risk: RetuneRisk, *, confirm_missed: list[int], confirm_short_history: bool, reason: str) -> None:
+    """BadInput naming the confirmation field and the risk when a risky change is not confirmed."""
+    try:
+        check_confirmation(risk, confirm_missed=confirm_missed, confirm_short_history=confirm_short_history, reason=reason)
+    except ConfirmationMissing as e:
+        raise BadInput(
+            str(e), field=f"body.{e.field}",
+            details={"needs_confirmation": risk.needs_confirmation, "missed_confirmed_faults": risk.missed_ids,
+                     "history_days": round(risk.history_days, 3), "min_reason": MIN_RISKY_REASON},
+        ) from None
+
+
+def risk_out(risk: RetuneRisk) -> RiskOut:
+    return RiskOut(
+        needs_confirmation=risk.needs_confirmation,
+        missed_confirmed_faults=risk.missed_ids,
+        confirmed_faults_in_range=risk.confirmed_total,
+        history_days=risk.history_days,
+        min_history_days=MIN_HISTORY_DAYS,
+        warning_factor=risk.warning_factor,
+        big_change=risk.big_change,
+        statements=risk.statements() + ([risk.change_note()] if risk.big_change else []),
+        min_reason=MIN_RISKY_REASON if risk.needs_confirmation else 3,
+    )
+
+
 @router.post("/threshold/preview", response_model=PreviewOut)
 def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller: OperatorCaller, registry: RegistryDep) -> PreviewOut:
     asset = q.get_asset(db, asset_id=asset_id)
     model = _model(registry, asset)
     current = q.rule_of(_in_force(db, asset, model))
     proposed = _propose(body, current, model)
-    until = body.until
-    if until is None:
-        # The asset's newest stored window (now, for a live asset; the replay's end for history).
-        until = just_after(asset.last_window_end_ms) if asset.last_window_end_ms is not None else datetime.now(timezone.utc)
-    since = body.since or until - PREVIEW_DEFAULT
-    if until <= since:
-        raise BadInput("until must be after since", field="body.until")
-    series = q.score_series(db, asset_id=asset_id, model_id=model.model_id, since=since, until=until)
-    past = q.past_alerts(db, asset_id=asset_id, since=since, until=until)
-    try:
-        cal = calibration_set(model.calibration, model.manifest)
-    except ValueError:
-        cal = None
-    result = preview(series, proposed.rule, current, past, cal)
+    done = preview_change(db, asset=asset, model=model, current=current, proposed=proposed.rule, since=body.since, until=body.until)
+    since, until, past, result = done.since, done.until, done.past, done.result
     counts = q.stored_counts(past)
     budget = (
         BudgetOut(
@@ -175,6 +228,7 @@ def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller
         stored_alerts=StoredAlertCounts(**counts.__dict__),
         expected_false_alarms_per_week=result.expected_false_alarms_per_week,
         current_expected_false_alarms_per_week=result.current_expected_false_alarms_per_week,
+        risk=risk_out(done.risk),
         note=PREVIEW_NOTE,
     )
 
@@ -195,6 +249,8 @@ def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, calle
                 field="body",
             )
         proposed = _propose(body, q.rule_of(current), model)
+        risk = preview_change(db, asset=asset, model=model, current=q.rule_of(current), proposed=proposed.rule).risk
+        confirm_change(risk, confirm_missed=body.confirm_missed, confirm_short_history=body.confirm_short_history, reason=body.reason)
         by_budget = proposed.budget is not None
         row = q.set_threshold(
             db,
@@ -205,7 +261,7 @@ def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, calle
             actor=caller.name,
             manifest=model.manifest,
             budget_per_week=body.false_alarms_per_week,
-            details={"method": proposed.budget.choice.method} if proposed.budget is not None else None,
+            details={**({"method": proposed.budget.choice.method} if proposed.budget is not None else {}), **risk.audit()},
         )
     out = threshold_out(row, model.manifest.window_period_s)
     db.commit()

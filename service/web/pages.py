@@ -11,7 +11,7 @@ from urllib.parse import urlencode
 from sqlalchemy.orm import Session
 
 from service.alerting import AlertRule
-from service.api.thresholds import PREVIEW_DEFAULT
+from service.api.thresholds import PREVIEW_DEFAULT, preview_change
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
@@ -19,6 +19,7 @@ from service.db.models import Alert
 from service.errors import KilterError, ModelError, NotFound
 from service.models_registry import LoadedModel, ModelRegistry
 from service.retune import calibration_set, expected_false_alarms_per_week, levels_for_budget, preview
+from service.retune_risk import MIN_HISTORY_DAYS, MIN_RISKY_REASON, RetuneRisk, fmt_days
 from service.settings import Settings
 from service.web import charts, views
 from service.web.access import WebUser
@@ -236,6 +237,21 @@ def alert_detail(db: Session, registry: ModelRegistry, *, alert_id: int, user: W
     }
 
 
+def risk_view(risk: RetuneRisk, past: list[Any]) -> dict[str, Any]:
+    """What the preview shows about a proposal's risks, and what Apply must then confirm."""
+    opened = {p.alert_id: views.fmt_ms(p.start_ms) for p in past}
+    return {
+        "statements": risk.statements(),
+        "change_note": risk.change_note(),
+        "needs_confirmation": bool(risk.needs_confirmation),
+        "missed": [{"id": i, "opened": opened.get(i, "–")} for i in risk.missed_ids],
+        "short_history": risk.short_history,
+        "history": fmt_days(risk.history_days),
+        "min_history": fmt_days(MIN_HISTORY_DAYS),
+        "min_reason": MIN_RISKY_REASON if risk.needs_confirmation else 3,
+    }
+
+
 @dataclass
 class ThresholdInputs:
     """The threshold form as typed: by value (warning, critical) or by budget."""
@@ -319,7 +335,12 @@ def threshold_page(
     if inputs is not None:
         try:
             rule, budget, _origin = proposed_rule(current_rule, inputs, cal)
-            result = preview(series, rule, current_rule, past, cal)
+            risk = None
+            if model is not None:  # the check Apply runs (service/api/thresholds.py), on the same stretch
+                done = preview_change(db, asset=asset, model=model, current=current_rule, proposed=rule, since=since, until=until)
+                result, risk = done.result, done.risk
+            else:
+                result = preview(series, rule, current_rule, past, cal)
             lanes.append(
                 charts.Lane(
                     "would open",
@@ -344,7 +365,7 @@ def threshold_page(
                 "overlap_false": result.overlap_false_alarm,
                 "expected": views.fmt_rate_short(result.expected_false_alarms_per_week),
                 "expected_note": (
-                    f"about {views.fmt_score(result.expected_false_alarms_per_week * 30.44 / 7)} a month "
+                    f"about {views.fmt_rate_short(result.expected_false_alarms_per_week * 30.44 / 7)} a month "
                     if result.expected_false_alarms_per_week
                     else ""
                 ),
@@ -352,9 +373,10 @@ def threshold_page(
                 "missed_confirmed": (
                     f"{confirmed_total - result.overlap_confirmed_fault} of the {confirmed_total} confirmed faults in this stretch "
                     "would have raised no alert at these levels."
-                    if result.overlap_confirmed_fault < confirmed_total
+                    if risk is None and result.overlap_confirmed_fault < confirmed_total
                     else ""
                 ),
+                "risk": risk_view(risk, past) if risk is not None else None,
             }
         except views.FormValueError as e:
             form_error = str(e)

@@ -27,6 +27,7 @@ from pydantic import ValidationError
 from sqlalchemy.orm import Session
 
 from service.api.deps import PEOPLE_RANK
+from service.api.thresholds import confirm_change, preview_change
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
@@ -470,6 +471,8 @@ def apply_threshold(
     critical: Annotated[str, Form(max_length=40)] = "",
     budget: Annotated[str, Form(max_length=40)] = "",
     reason: Annotated[str, Form(max_length=2000)] = "",
+    confirm_missed: Annotated[list[int] | None, Form()] = None,
+    confirm_short_history: Annotated[str, Form(max_length=8)] = "",
     csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None,
 ) -> Response:
     def act(db: Session, user: WebUser, asset: Any) -> None:
@@ -478,9 +481,12 @@ def apply_threshold(
         current_rule = threshold_q.rule_of(threshold_q.ensure_initial_version(db, asset=asset, manifest=model.manifest))
         inputs = pages.ThresholdInputs("budget" if budget.strip() else "level", warning, critical, budget)
         rule, budget_per_week, origin = pages.proposed_rule(current_rule, inputs, pages.calibration_of(model))
+        # The API's check (service/retune_risk.py): a risky change needs its risks named and a longer reason.
+        risk = preview_change(db, asset=asset, model=model, current=current_rule, proposed=rule).risk
+        confirm_change(risk, confirm_missed=confirm_missed or [], confirm_short_history=bool(confirm_short_history), reason=why)
         threshold_q.set_threshold(
             db, asset=asset, rule=rule, origin=origin, reason=why, actor=user.name, manifest=model.manifest,
-            budget_per_week=budget_per_week, details={"via": "dashboard"},
+            budget_per_week=budget_per_week, details={"via": "dashboard", **risk.audit()},
         )
 
     return _asset_action(request, asset_id, csrf_token, "applied", act)

@@ -119,8 +119,23 @@ def test_threshold_editor_is_for_operators_only(env: Env) -> None:
     sign_in(env, "operator")
     page = env.client.get("/assets/pump-01/thresholds?by=level&warning=5")
     assert page.status_code == 200 and 'data-figure="would-open"' in page.text
+    # Under an hour of stored scores: Apply asks to accept the short history by name, with a real reason.
+    assert 'name="confirm_short_history"' in page.text and 'minlength="15"' in page.text and "Apply anyway as v2" in page.text
+    assert "Advisory only: a threshold decides who is told" in page.text
     r = env.client.post(
         "/assets/pump-01/thresholds", data={"warning": "5", "reason": "quieter", "csrf_token": csrf(env)}, follow_redirects=False
+    )
+    assert r.status_code == 422 and "less than the 7.0 asset-days" in r.text
+    r = env.client.post(
+        "/assets/pump-01/thresholds", data={"warning": "5", "reason": "quieter", "confirm_short_history": "1", "csrf_token": csrf(env)},
+        follow_redirects=False,
+    )
+    assert r.status_code == 422 and "at least 15 characters" in r.text
+    assert env.count("threshold_versions", "asset_id = 'pump-01'") == 1
+    r = env.client.post(
+        "/assets/pump-01/thresholds",
+        data={"warning": "5", "reason": "quieter at night, agreed with the shift", "confirm_short_history": "1", "csrf_token": csrf(env)},
+        follow_redirects=False,
     )
     assert r.status_code == 303
     assert env.rows("SELECT version, warning, origin, created_by FROM threshold_versions WHERE asset_id = 'pump-01' ORDER BY version DESC")[0] == (
