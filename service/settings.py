@@ -74,6 +74,9 @@ class Settings(BaseSettings):
     smtp_starttls: bool = Field(default=False, description="upgrade the SMTP session with STARTTLS before logging in")
     smtp_ca_file: Path | None = Field(default=None, description="CA bundle for the relay's certificate (default: the system's)")
 
+    # Dashboard: how often the alert list and alert page refresh themselves (a light poll).
+    dashboard_refresh_s: float = Field(default=15.0, ge=1, le=3600, description="seconds between the pages' live refreshes")
+
     @classmethod
     def settings_customise_sources(
         cls,

@@ -140,6 +140,50 @@ def alert_list(
     }
 
 
+def alert_live(detail: alert_q.AlertDetail, model: LoadedModel | None) -> dict[str, Any]:
+    """The parts of the alert page that change while it is open: its facts and history
+    (the page and its live refresh both render them)."""
+    a, th = detail.alert, detail.threshold
+    end = a.returned_at or a.last_seen_at
+    length = end - a.opened_at
+    warning = th.warning if th else None
+    critical = th.critical if th else None
+    if warning is None and model is not None:
+        warning, critical = model.manifest.thresholds.warning, model.manifest.thresholds.critical
+    history = [
+        {
+            "at": views.fmt_time(e.at),
+            "actor": e.actor,
+            "kind": e.kind,
+            "label": views.EVENT_LABELS.get(e.kind, e.kind)
+            + (f" as {views.OUTCOME_LABELS.get((e.details or {}).get('outcome', ''), '')}" if e.kind == "closed" else "")
+            + (" (with the close)" if e.kind == "acknowledged" and (e.details or {}).get("implicit") else ""),
+            "note": e.note,
+        }
+        for e in detail.events
+    ]
+    levels = f"warning {views.fmt_score(warning)}, critical {views.fmt_score(critical)}" + (f" (v{th.version})" if th else "")
+    return {
+        "a": {
+            **alert_row(a, th.warning if th else None),
+            "returned": views.fmt_time(a.returned_at),
+            "duration": views.fmt_duration(length.total_seconds()) + (" so far" if a.condition == "active" else ""),
+            "peak_at": views.fmt_time(a.peak_at) + " UTC",
+            "levels": levels,
+            "on_delay": f"{th.on_k} of {th.on_n}" if th else "enough",
+            "model": f"{a.model_id} / {a.model_version}",
+            "outcome": a.outcome,
+            "outcome_label": views.OUTCOME_LABELS.get(a.outcome or "", a.outcome),
+            "close_note": a.close_note,
+            "closed": views.fmt_time(a.closed_at),
+            "closed_by": a.closed_by,
+            "acknowledged": views.fmt_time(a.acknowledged_at),
+            "acknowledged_by": a.acknowledged_by,
+        },
+        "history": history,
+    }
+
+
 def alert_detail(db: Session, registry: ModelRegistry, *, alert_id: int, user: WebUser) -> dict[str, Any]:
     """The alert page: facts, score chart around the alert, contributions at the peak, raw
     readings of the top channels over the same stretch, and the history."""
@@ -195,42 +239,13 @@ def alert_detail(db: Session, registry: ModelRegistry, *, alert_id: int, user: W
         t_range=t_range,
         title=f"Raw readings of {', '.join(top) or 'the top channels'} on {a.asset_id}",
     )
-    history = [
-        {
-            "at": views.fmt_time(e.at),
-            "actor": e.actor,
-            "kind": e.kind,
-            "label": views.EVENT_LABELS.get(e.kind, e.kind)
-            + (f" as {views.OUTCOME_LABELS.get((e.details or {}).get('outcome', ''), '')}" if e.kind == "closed" else "")
-            + (" (with the close)" if e.kind == "acknowledged" and (e.details or {}).get("implicit") else ""),
-            "note": e.note,
-        }
-        for e in detail.events
-    ]
-    levels = f"warning {views.fmt_score(warning)}, critical {views.fmt_score(critical)}" + (f" (v{th.version})" if th else "")
     return {
         "page_title": f"Alert #{a.id}",
         "section": "alerts",
-        "a": {
-            **alert_row(a, th.warning if th else None),
-            "returned": views.fmt_time(a.returned_at),
-            "duration": views.fmt_duration(length.total_seconds()) + (" so far" if a.condition == "active" else ""),
-            "peak_at": views.fmt_time(a.peak_at) + " UTC",
-            "levels": levels,
-            "on_delay": f"{th.on_k} of {th.on_n}" if th else "enough",
-            "model": f"{a.model_id} / {a.model_version}",
-            "outcome": a.outcome,
-            "outcome_label": views.OUTCOME_LABELS.get(a.outcome or "", a.outcome),
-            "close_note": a.close_note,
-            "closed": views.fmt_time(a.closed_at),
-            "closed_by": a.closed_by,
-            "acknowledged": views.fmt_time(a.acknowledged_at),
-            "acknowledged_by": a.acknowledged_by,
-        },
+        **alert_live(detail, model),
         "score_svg": score_svg,
         "bars_svg": bars_svg,
         "readings_svg": readings_svg,
-        "history": history,
         "outcomes": list(views.OUTCOME_LABELS.items()),
         "can_tune": user.can("operator"),
         "back_href": "/alerts?" + urlencode({"asset": a.asset_id}),

@@ -21,7 +21,7 @@ from typing import Annotated, Any
 from urllib.parse import urlencode
 
 from fastapi import APIRouter, Form, Query, Request
-from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from jinja2 import Environment, FileSystemLoader, select_autoescape
 from pydantic import ValidationError
 from sqlalchemy.orm import Session
@@ -282,7 +282,64 @@ def alerts_page(
     filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
     with _read_session(request) as db:
         context = pages.alert_list(db, user=user, filters=filters, cursor=cursor, page_size=PAGE_SIZE, sort=sort or "priority")
+    context.update(_live(request), live_src="/alerts/live" + (f"?{request.url.query}" if request.url.query else ""))
     return _render(request, "alerts.html", context, user=user)
+
+
+def _live(request: Request) -> dict[str, Any]:
+    return {"live_every_s": request.app.state.settings.dashboard_refresh_s, "updated": datetime.now(timezone.utc).strftime("%H:%M")}
+
+
+def _live_parts(request: Request, parts: dict[str, str], context: dict[str, Any], user: WebUser) -> JSONResponse:
+    """The live refresh's answer: each page part rendered by the template the page includes."""
+    html = {
+        element: _env.get_template(template).render(request=request, user=user, csrf_token=user.csrf_token, static=_static_url, **context)
+        for element, template in parts.items()
+    }
+    response = JSONResponse({"parts": html, "updated": _live(request)["updated"], "state": context.get("a", {}).get("state")})
+    response.headers["Cache-Control"] = "no-store"
+    return response
+
+
+def _live_refused(user: WebUser | None) -> JSONResponse:
+    message = "signed out: reload the page and sign in" if user is None else "not available with your key"
+    return JSONResponse({"error": message}, status_code=401 if user is None else 403)
+
+
+@router.get("/alerts/live")
+def alerts_live(
+    request: Request,
+    asset: Annotated[str | None, Query(max_length=64)] = None,
+    state: Annotated[str | None, Query(max_length=32)] = None,
+    severity: Annotated[str | None, Query(max_length=32)] = None,
+    since: Annotated[str | None, Query(max_length=40)] = None,
+    until: Annotated[str | None, Query(max_length=40)] = None,
+    cursor: Annotated[str | None, Query(max_length=200)] = None,
+    sort: Annotated[str | None, Query(max_length=16)] = None,
+) -> Response:
+    """The alert list's rows and counts, for the page to refresh itself without a reload."""
+    user = current_user(request)
+    if user is None or not user.can("maintenance"):
+        return _live_refused(user)
+    filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
+    with _read_session(request) as db:
+        context = pages.alert_list(db, user=user, filters=filters, cursor=cursor, page_size=PAGE_SIZE, sort=sort or "priority")
+    return _live_parts(request, {"live-tallies": "_alert_tallies.html", "live-table": "_alert_table.html"}, context, user)
+
+
+@router.get("/alerts/{alert_id}/live")
+def alert_live(request: Request, alert_id: int) -> Response:
+    """The alert page's facts and history, for the page to refresh itself."""
+    user = current_user(request)
+    if user is None or not user.can("maintenance"):
+        return _live_refused(user)
+    with _read_session(request) as db:
+        try:
+            detail = alert_q.get_alert(db, alert_id=alert_id, allowed_assets=user.caller.assets)
+        except KilterError as e:
+            return JSONResponse({"error": e.message}, status_code=e.status)
+        context = pages.alert_live(detail, pages.loaded_model(request.app.state.registry, detail.alert.model_id))
+    return _live_parts(request, {"live-facts": "_alert_facts.html", "live-history": "_alert_history.html"}, context, user)
 
 
 @router.get("/alerts/{alert_id}", response_class=HTMLResponse)
@@ -295,6 +352,7 @@ def alert_page(request: Request, alert_id: int) -> Response:
             context = pages.alert_detail(db, request.app.state.registry, alert_id=alert_id, user=user)
         except KilterError as e:
             return _failed(request, user, e, "/alerts")
+    context.update(_live(request))
     return _render(request, "alert_detail.html", context, user=user)
 
 

@@ -246,3 +246,25 @@ def test_alert_list_pages_newest_first_without_repeats(env: Env) -> None:
     page2 = [int(i) for i in re.findall(r'<tr data-alert-id="(\d+)"', second.text)]
     assert page1 + page2 == ids_in_db and len(page1) == 25
     assert 'rel="next"' not in second.text and "« Newest" in second.text
+
+
+def test_live_refresh_answers_the_pages_changing_parts(env: Env) -> None:
+    first = open_alert(env, "pump-01")
+    assert env.client.get("/alerts/live").status_code == 401  # no session: the page says so and stops
+    sign_in(env, "maintenance")
+    page = env.client.get("/alerts")
+    assert 'data-live-src="/alerts/live"' in page.text and 'id="live-updated"' in page.text
+    live = env.client.get("/alerts/live").json()
+    assert re.findall(r'<tr data-alert-id="(\d+)"', live["parts"]["live-table"]) == [str(first)]
+    assert re.fullmatch(r"\d\d:\d\d", live["updated"])
+    second = open_alert(env, "pump-02")  # arrives while the page is open
+    live = env.client.get("/alerts/live?asset=pump-02").json()
+    assert re.findall(r'<tr data-alert-id="(\d+)"', live["parts"]["live-table"]) == [str(second)]
+    assert 'data-state="unacknowledged">1<' in live["parts"]["live-tallies"]
+    one = env.client.get(f"/alerts/{first}/live").json()
+    assert one["state"] == "unacknowledged" and 'data-kind="opened"' in one["parts"]["live-history"]
+    r = env.client.post(f"/alerts/{first}/acknowledge", data={"csrf_token": csrf(env, f"/alerts/{first}")}, follow_redirects=False)
+    assert r.status_code == 303
+    one = env.client.get(f"/alerts/{first}/live").json()
+    assert one["state"] == "acknowledged" and 'data-kind="acknowledged"' in one["parts"]["live-history"]
+    assert env.client.get("/alerts/99999/live").status_code == 404
