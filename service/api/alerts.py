@@ -10,6 +10,7 @@ from datetime import datetime, timedelta, timezone
 from typing import Annotated
 
 from fastapi import APIRouter, Path, Query
+from sqlalchemy.orm import Session
 
 from service.alert_health import chatter_horizon_ms, health
 from service.api.deps import DbSession, MaintenanceCaller, RegistryDep, WriteSession
@@ -29,6 +30,7 @@ from service.api.schemas_alerts import (
 )
 from service.db import alerts as q
 from service.errors import BadInput, ModelError
+from service.models_registry import ModelRegistry
 
 router = APIRouter(prefix="/v1", tags=["alerts"])
 
@@ -131,6 +133,13 @@ def alert_health(
     until: Annotated[UtcIn | None, Query(description="default: the fleet's newest window end, else now")] = None,
     operator_positions: Annotated[int, Query(ge=1, le=1000, description="desks sharing the fleet's alerts")] = 1,
 ) -> AlertHealthOut:
+    return health_report(db, registry, since=since, until=until, operator_positions=operator_positions)
+
+
+def health_report(
+    db: Session, registry: ModelRegistry, *, since: datetime | None, until: datetime | None, operator_positions: int = 1
+) -> AlertHealthOut:
+    """The alert-system health figures (the endpoint and the dashboard's page answer these)."""
     if until is None:
         newest = q.newest_window_end(db)
         until = q.just_after(q.to_ms(newest)) if newest is not None else datetime.now(timezone.utc)

@@ -459,3 +459,59 @@ def threshold_page(
         ],
         "shelved": shelved,
     }
+
+
+VERDICT_LABELS = {"within_target": "within target", "above_target": "above target", "beyond_limit": "beyond limit", "no_data": "no data"}
+
+
+def _figure_number(v: float | None, unit: str) -> str:
+    """A figure's number; fractions as percentages."""
+    if v is None:
+        return "–"
+    if unit.startswith("fraction"):
+        return f"{views.fmt_score(v * 100)} %"
+    return views.fmt_score(v)
+
+
+def alert_health_page(db: Session, registry: ModelRegistry) -> dict[str, Any]:
+    """The alert-health figures of GET /v1/alert-health, for people."""
+    from service.api.alerts import health_report
+
+    h = health_report(db, registry, since=None, until=None)
+    return {
+        "page_title": "Alert health",
+        "section": "health",
+        "h": h,
+        "span": f"from {views.fmt_time(h.since)} to {views.fmt_time(h.until)}",
+        "asset_days": views.fmt_score(h.asset_days),
+        "horizon": views.fmt_duration(h.chatter_horizon_s),
+        "figures": [
+            {
+                "name": f.name,
+                "label": f.name.replace("_", " "),
+                "unit": f.unit,
+                "value": _figure_number(f.value, f.unit),
+                "target": _figure_number(f.target, f.unit),
+                "limit": _figure_number(f.limit, f.unit),
+                "verdict": f.verdict,
+                "verdict_label": VERDICT_LABELS.get(f.verdict, f.verdict),
+                "basis": f.basis,
+            }
+            for f in h.figures
+        ],
+    }
+
+
+def notify_page(db: Session) -> dict[str, Any]:
+    """Routes and the newest outbox messages, for admins."""
+    from service.db import outbox
+
+    return {
+        "page_title": "Notifications",
+        "section": "notify",
+        "routes": outbox.list_routes(db),
+        "outbox": [
+            {"kind": m.kind, "key": m.idempotency_key, "status": m.status, "attempts": m.attempts, "last_error": m.last_error}
+            for m in outbox.list_outbox(db, limit=20)
+        ],
+    }

@@ -61,6 +61,7 @@ DONE_MESSAGES = {
     "shelved": "Asset shelved: no new alerts open until the time shown.",
     "unshelved": "Asset unshelved: alerts open again as the rule decides.",
     "signed_out": "You are signed out.",
+    "test_queued": "Test message queued: the service sends it within a few seconds.",
 }
 
 
@@ -586,3 +587,41 @@ def unshelve_asset(request: Request, asset_id: str, csrf_token: Annotated[str | 
     return _asset_action(
         request, asset_id, csrf_token, "unshelved", lambda db, user, asset: threshold_q.unshelve(db, asset=asset, actor=user.name)
     )
+
+
+# --------------------------------------------------------------------------- alert health, notifications
+
+
+@router.get("/alert-health", response_class=HTMLResponse)
+def alert_health_page(request: Request) -> Response:
+    user, refused = _guard(request)
+    if refused is not None or user is None:
+        return refused  # type: ignore[return-value]
+    with _read_session(request) as db:
+        context = pages.alert_health_page(db, request.app.state.registry)
+    return _render(request, "alert_health.html", context, user=user)
+
+
+@router.get("/notify", response_class=HTMLResponse)
+def notify_page(request: Request) -> Response:
+    user, refused = _guard(request, role="admin")
+    if refused is not None or user is None:
+        return refused  # type: ignore[return-value]
+    with _read_session(request) as db:
+        context = pages.notify_page(db)
+    return _render(request, "notify.html", context, user=user)
+
+
+@router.post("/notify/routes/{route_id}/test", response_class=HTMLResponse)
+def notify_test(request: Request, route_id: int, csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None) -> Response:
+    from service.db import outbox
+
+    user, refused = _guard(request, role="admin", csrf=csrf_token, posting=True)
+    if refused is not None or user is None:
+        return refused  # type: ignore[return-value]
+    try:
+        with _write(request) as db:
+            outbox.queue_test(db, route_id=route_id, actor=user.name)
+    except KilterError as e:
+        return _failed(request, user, e, "/notify")
+    return _after_post("/notify", "test_queued")

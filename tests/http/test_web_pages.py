@@ -268,3 +268,28 @@ def test_live_refresh_answers_the_pages_changing_parts(env: Env) -> None:
     one = env.client.get(f"/alerts/{first}/live").json()
     assert one["state"] == "acknowledged" and 'data-kind="acknowledged"' in one["parts"]["live-history"]
     assert env.client.get("/alerts/99999/live").status_code == 404
+
+
+def test_alert_health_and_notification_pages(env: Env) -> None:
+    open_alert(env, "pump-01")
+    sign_in(env, "maintenance")
+    page = env.client.get("/alert-health")
+    assert page.status_code == 200 and 'id="health-table"' in page.text
+    api = env.client.get("/v1/alert-health", headers={"Authorization": f"Bearer {env.keys['maintenance']}"}).json()
+    assert re.findall(r'<tr data-figure="(\w+)"', page.text) == [f["name"] for f in api["figures"]]
+    assert "alerts per asset-day" in page.text and "not a safety system" in page.text
+    assert env.client.get("/notify", follow_redirects=False).status_code == 403  # admins only
+    sign_in(env, "admin")
+    from service.db import outbox
+
+    with env.client.app.state.db.transaction() as s:
+        route, _ = outbox.add_route(s, name="desk-hook", channel="webhook", target="http://127.0.0.1:9/hook", actor="t")
+        route_id = route.id
+    page = env.client.get("/notify")
+    assert "desk-hook" in page.text and "Send test" in page.text
+    r = env.client.post(f"/notify/routes/{route_id}/test", data={"csrf_token": csrf(env, "/notify")}, follow_redirects=False)
+    assert r.status_code == 303 and "done=test_queued" in r.headers["location"]
+    # Queued (the running sender may already be trying the unreachable port: never sent).
+    assert [(k, st in ("pending", "sending")) for k, st in env.rows("SELECT kind, status FROM notify_outbox")] == [("test", True)]
+    r = env.client.post(f"/notify/routes/{route_id}/test", data={"csrf_token": "forged"}, follow_redirects=False)
+    assert r.status_code == 403 and env.count("notify_outbox", "1 = 1") == 1

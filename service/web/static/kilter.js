@@ -64,3 +64,25 @@ document.addEventListener("DOMContentLoaded", () => {
   document.addEventListener("visibilitychange", () => { if (!document.hidden && timer === null) tick(); });
   schedule();
 });
+
+// A hint above a table or chart that is wider than its box (phones): "swipe sideways".
+document.addEventListener("DOMContentLoaded", () => {
+  const boxes = () => document.querySelectorAll("[data-scroll-hint]");
+  const sync = () => {
+    boxes().forEach((box) => {
+      let hint = box.previousElementSibling;
+      if (!hint || !hint.classList.contains("scroll-hint")) {
+        hint = document.createElement("p");
+        hint.className = "scroll-hint";
+        hint.textContent = box.dataset.scrollHint;
+        box.parentNode.insertBefore(hint, box);
+      }
+      hint.classList.toggle("shown", box.scrollWidth > box.clientWidth + 1);
+    });
+  };
+  sync();
+  window.addEventListener("resize", sync);
+  // The live refresh may swap a table in: check again when the list changes.
+  const live = document.getElementById("live-table");
+  if (live && window.MutationObserver) new MutationObserver(sync).observe(live, { childList: true });
+});
