@@ -288,7 +288,8 @@ def alerts_page(
 
 
 def _live(request: Request) -> dict[str, Any]:
-    return {"live_every_s": request.app.state.settings.dashboard_refresh_s, "updated": datetime.now(timezone.utc).strftime("%H:%M")}
+    every = request.app.state.settings.dashboard_refresh_s
+    return {"live_every_s": f"{every:g}", "updated": datetime.now(timezone.utc).strftime("%H:%M")}
 
 
 def _live_parts(request: Request, parts: dict[str, str], context: dict[str, Any], user: WebUser) -> JSONResponse:
