@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 from email import message_from_bytes
 from email.message import Message
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from pathlib import Path
 from typing import Any
 
 from service.notify_channels import KEY_HEADER, SIGNATURE_HEADER, TIMESTAMP_HEADER, verify
@@ -113,11 +114,15 @@ class SmtpSink:
 
 
 @contextmanager
-def smtp_sink() -> Iterator[SmtpSink]:
-    """aiosmtpd's Controller on 127.0.0.1 and a free port, collecting every message."""
+def smtp_sink(*, tls: tuple[Path, Path] | None = None, users: dict[str, str] | None = None) -> Iterator[SmtpSink]:
+    """aiosmtpd's Controller on 127.0.0.1 and a free port, collecting every message. With
+    `tls` (certificate, key) it offers STARTTLS and requires it; with `users` it requires a
+    login (only over TLS) against those names and passwords."""
     import socket
+    import ssl
 
     from aiosmtpd.controller import Controller
+    from aiosmtpd.smtp import AuthResult, LoginPassword
 
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -130,9 +135,34 @@ def smtp_sink() -> Iterator[SmtpSink]:
             sink.messages.append(message_from_bytes(envelope.original_content or envelope.content))
             return "250 OK"
 
-    controller = Controller(Handler(), hostname="127.0.0.1", port=port)
+    def authenticate(server: Any, session: Any, envelope: Any, mechanism: str, auth_data: Any) -> AuthResult:
+        ok = isinstance(auth_data, LoginPassword) and users is not None and \
+            users.get(auth_data.login.decode()) == auth_data.password.decode()
+        return AuthResult(success=ok, handled=False)
+
+    kwargs: dict[str, Any] = {}
+    if tls is not None:
+        context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+        context.load_cert_chain(str(tls[0]), str(tls[1]))
+        kwargs.update(tls_context=context, require_starttls=True)
+    if users is not None:
+        kwargs.update(authenticator=authenticate, auth_required=True, auth_require_tls=True)
+    controller = Controller(Handler(), hostname="127.0.0.1", port=port, **kwargs)
     controller.start()
     try:
         yield sink
     finally:
         controller.stop()
+
+
+def self_signed(folder: Path) -> tuple[Path, Path]:
+    """A certificate for 127.0.0.1 made by the openssl command (the test's own CA file)."""
+    import subprocess
+
+    cert, key = folder / "relay.pem", folder / "relay.key"
+    subprocess.run(
+        ["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-keyout", str(key), "-out", str(cert), "-days", "1",
+         "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1"],
+        check=True, capture_output=True, timeout=60,
+    )
+    return cert, key

@@ -9,13 +9,14 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import shutil
 from datetime import datetime, timedelta, timezone
 
 import pytest
 from sqlalchemy import select
 
 from alerts_support import T0, Service, add_alert, add_asset, running
-from notify_support import smtp_sink, webhook_receiver
+from notify_support import self_signed, smtp_sink, webhook_receiver
 from service.db import outbox, rule_alerts
 from service.db.ingest_sql import AlertRow
 from service.db.models import NotifyOutbox
@@ -230,3 +231,25 @@ def test_test_message_through_api_and_cli(svc: Service, sink, monkeypatch, capsy
         assert run_once(svc.db, svc.app.state.settings, owner="a").sent == 2
     assert [d.json["event"] for d in hook.deliveries] == ["test"] and hook.deliveries[0].signature_ok
     assert len(sink.messages) == 1 and "test message for route 'desk'" in sink.messages[0]["Subject"]
+
+
+@pytest.mark.skipif(shutil.which("openssl") is None, reason="the openssl command makes the relay's test certificate")
+def test_email_over_starttls_with_a_login_and_a_refused_login(tmp_path) -> None:
+    """KILTER_SMTP_STARTTLS with the relay's CA file, user and password (RFC 3207 STARTTLS,
+    then AUTH); a wrong password is final (dead-lettered at once), not retried."""
+    cert, key = self_signed(tmp_path)
+    with smtp_sink(tls=(cert, key), users={"kilter": "relay-pass-1"}) as relay:
+        for password, want in (("relay-pass-1", "sent"), ("wrong-pass", "dead")):
+            folder = tmp_path / want
+            folder.mkdir()
+            with running(folder, notify_enabled=False, smtp_host=relay.host, smtp_port=relay.port, smtp_starttls=True,
+                         smtp_ca_file=cert, smtp_user="kilter", smtp_password=password, smtp_from="kilter@plant.example") as svc:
+                add_asset(svc, "pump-01")
+                add_route(svc, name="desk", channel="email", target="desk@plant.example", events=["opened"])
+                add_alert(svc, "pump-01", T0)
+                run_once(svc.db, svc.app.state.settings, owner="a")
+                (row,) = rows(svc)
+                assert row.status == want and row.attempts == 1, row.last_error
+                if want == "dead":
+                    assert "login refused" in row.last_error
+    assert len(relay.messages) == 1 and relay.envelopes == [("kilter@plant.example", ["desk@plant.example"])]
