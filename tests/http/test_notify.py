@@ -253,3 +253,20 @@ def test_email_over_starttls_with_a_login_and_a_refused_login(tmp_path) -> None:
                 if want == "dead":
                     assert "login refused" in row.last_error
     assert len(relay.messages) == 1 and relay.envelopes == [("kilter@plant.example", ["desk@plant.example"])]
+
+
+def test_two_senders_side_by_side_send_each_message_once(svc: Service) -> None:
+    """Two senders (as two workers or replicas would run) drain one outbox together: the
+    database's claim gives each message to one of them."""
+    from collections import Counter
+    from concurrent.futures import ThreadPoolExecutor
+
+    with webhook_receiver(SECRET) as hook:
+        add_route(svc, name="hook", channel="webhook", target=hook.url, secret=SECRET)
+        for i in range(6):
+            add_alert(svc, "pump-01", T0 + i * H, returned_at=T0 + i * H + timedelta(minutes=20))
+        assert len(rows(svc)) == 12  # opened and returned, six times
+        with ThreadPoolExecutor(max_workers=2) as pool:
+            results = list(pool.map(lambda owner: run_once(svc.db, svc.app.state.settings, owner=owner), ["w1", "w2"]))
+    assert sum(r.sent for r in results) == 12 and all(r.lost_lease == 0 for r in results)
+    assert Counter(hook.keys()) == Counter({r.idempotency_key: 1 for r in rows(svc)})

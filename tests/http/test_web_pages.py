@@ -215,7 +215,7 @@ def test_alert_list_filters_and_reports_bad_dates(env: Env) -> None:
     assert re.findall(r'href="/alerts\?state=(\w+)"', tallies) == ["unacknowledged", "acknowledged", "closed"]
     assert "2</span> need acknowledging" in tallies and "0</span> closed" in tallies and "statebar" not in whole
     # The condition beside the state, the peak as a multiple of the warning level (10.7 / 4).
-    assert whole.count('<span class="cond cond-returned">returned</span>') == 2 and "2.67x warning</span>" in whole  # condition column, peak as a multiple of warning
+    assert whole.count('<td class="hide-phone"><span class="cond cond-returned">returned</span></td>') == 2 and "2.67x warning</span>" in whole  # condition column, peak as a multiple of warning
     page = env.client.get("/alerts?since=yesterday")
     assert page.status_code == 200 and "Opened from" in page.text and "not a date and time" in page.text
 
