@@ -122,19 +122,24 @@ class _Frame:
 
 
 def format_number(v: float, digits: int = 3) -> str:
-    """A short human number: 3 significant digits, no exponent for everyday magnitudes."""
+    """A short human number: 3 significant digits and never an exponent (people read
+    "1.2 million" and "< 0.001", not 1.2e+06 and 1.5e-05)."""
     if v is None or not math.isfinite(v):
         return "–"
     if v == 0:
         return "0"
     mag = abs(v)
-    if 1e-3 <= mag < 1e6:
-        decimals = max(0, digits - 1 - int(math.floor(math.log10(mag))))
-        text = f"{v:.{decimals}f}"
-        if "." in text:
-            text = text.rstrip("0").rstrip(".")
-        return text
-    return f"{v:.{digits - 1}e}"
+    if mag < 1e-3:
+        return "< 0.001" if v > 0 else "> -0.001"
+    if mag >= 1e6:
+        for size, word in ((1e12, "trillion"), (1e9, "billion"), (1e6, "million")):
+            if mag >= size:
+                return f"{format_number(v / size, digits)} {word}"
+    decimals = max(0, digits - 1 - int(math.floor(math.log10(mag))))
+    text = f"{v:.{decimals}f}"
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")
+    return text
 
 
 def nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:

@@ -161,7 +161,8 @@ def test_time_ticks_sit_on_round_utc_times() -> None:
 
 
 @pytest.mark.parametrize(
-    "value,text", [(0, "0"), (1.0, "1"), (0.123456, "0.123"), (12.345, "12.3"), (2500.0, "2500"), (1.5e-5, "1.50e-05"), (float("nan"), "–")]
+    "value,text", [(0, "0"), (1.0, "1"), (0.123456, "0.123"), (12.345, "12.3"), (2500.0, "2500"), (1.5e-5, "< 0.001"),
+     (2.5e6, "2.5 million"), (1.69e-42, "< 0.001"), (float("nan"), "–")]
 )
 def test_format_number(value: float, text: str) -> None:
     assert charts.format_number(value) == text
