@@ -62,9 +62,15 @@ class RetuneRisk:
         out = []
         if self.missed:
             ids = ", ".join(f"#{i}" for i in self.missed_ids)
+            if self.confirmed_total == 1:
+                which = "The one confirmed fault"
+            elif len(self.missed) == self.confirmed_total:
+                which = f"All {self.confirmed_total} confirmed faults"
+            else:
+                which = f"{len(self.missed)} of the {self.confirmed_total} confirmed faults"
             out.append(
-                f"{len(self.missed)} of the {self.confirmed_total} confirmed fault{'s' if self.confirmed_total != 1 else ''} "
-                f"in this stretch would have raised no alert at these levels (alert{'s' if len(self.missed) != 1 else ''} {ids})."
+                f"{which} in this stretch would have raised no alert at these levels "
+                f"(alert{'s' if len(self.missed) != 1 else ''} {ids})."
             )
         if self.short_history:
             out.append(

@@ -252,6 +252,11 @@ def alert_detail(db: Session, registry: ModelRegistry, *, alert_id: int, user: W
     }
 
 
+def month_note(per_month: float) -> str:
+    short = views.fmt_rate_short(per_month)
+    return f"under {short[2:]} a month" if short.startswith("<") else f"about {short} a month"
+
+
 def risk_view(risk: RetuneRisk, past: list[Any]) -> dict[str, Any]:
     """What the preview shows about a proposal's risks, and what Apply must then confirm."""
     opened = {p.alert_id: views.fmt_ms(p.start_ms) for p in past}
@@ -380,7 +385,7 @@ def threshold_page(
                 "overlap_false": result.overlap_false_alarm,
                 "expected": views.fmt_rate_short(result.expected_false_alarms_per_week),
                 "expected_note": (
-                    f"about {views.fmt_rate_short(result.expected_false_alarms_per_week * 30.44 / 7)} a month "
+                    f"{month_note(result.expected_false_alarms_per_week * 30.44 / 7)} "
                     if result.expected_false_alarms_per_week
                     else ""
                 ),
