@@ -60,7 +60,10 @@ def deliver(message: outbox.Claimed, settings: Settings) -> None:
     if message.channel == "webhook":
         if not message.secret:
             raise DeliveryError(f"route {message.route_name!r} has no signing secret", permanent=True)
-        send_webhook(message.target, message.secret, message.payload, key=message.idempotency_key, timeout_s=settings.notify_timeout_s)
+        payload = message.payload
+        if settings.public_url and payload.get("alert"):  # a link people can open, the same on every attempt
+            payload = {**payload, "url": settings.public_url.rstrip("/") + payload["alert"]["path"]}
+        send_webhook(message.target, message.secret, payload, key=message.idempotency_key, timeout_s=settings.notify_timeout_s)
         return
     config = smtp_config(settings)
     if config is None:

@@ -89,6 +89,7 @@ def test_each_transition_is_delivered_once_signed_to_its_routes(svc: Service, si
     assert sorted(d.json["event"] for d in hook.deliveries) == ["escalated", "opened", "opened", "returned"]
     first = hook.deliveries[0]
     assert first.key == first.json["idempotency_key"] == f"alert-{a1}-opened-route-{web['id']}"
+    assert first.json["url"] == f"https://kilter.plant.example/alerts/{a1}" and first.json["alert"]["asset_id"] == "pump-01"
     # The receiver's check, written out as the README gives it (RFC 2104 HMAC with SHA-256).
     ts = first.headers["kilter-timestamp"]
     mac = hmac.new(SECRET.encode(), ts.encode() + b"." + first.body, hashlib.sha256).hexdigest()
