@@ -17,7 +17,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import datetime, timedelta, timezone
 from typing import Any
 
 from sqlalchemy.orm import Session
@@ -27,7 +27,14 @@ from service.caller import Caller
 from service.db import alerts as alert_q
 from service.db import thresholds as threshold_q
 from service.db.models import Alert, AlertEvent, Asset, ThresholdVersion
+from service.db.alerts import just_after
+from service.errors import BadInput
 from service.models_registry import LoadedModel, ModelRegistry
+from service.retune import PastAlert, Preview, calibration_set, preview
+from service.retune_risk import MIN_RISKY_REASON, ConfirmationMissing, RetuneRisk, assess, check_confirmation
+
+# How much stored history a preview replays unless asked otherwise.
+PREVIEW_DEFAULT = timedelta(days=30)
 
 # --------------------------------------------------------------------------- alerts
 
@@ -73,17 +80,31 @@ def _in_force(session: Session, registry: ModelRegistry, asset: Asset) -> tuple[
     return model, threshold_q.ensure_initial_version(session, asset=asset, manifest=model.manifest)
 
 
+@dataclass(frozen=True)
+class Confirmation:
+    """What the person changing a threshold has confirmed (service/retune_risk.py names the risks)."""
+
+    missed: list[int]  # ids of confirmed faults the change is known to miss
+    short_history: bool  # the preview rests on less history than MIN_HISTORY_DAYS
+
+
 def change_threshold(
-    session: Session, registry: ModelRegistry, *, caller: Caller, asset_id: str, reason: str, propose: Propose
+    session: Session, registry: ModelRegistry, *, caller: Caller, asset_id: str, reason: str, propose: Propose,
+    confirm: Confirmation,
 ) -> tuple[ThresholdVersion, LoadedModel]:
     """A new threshold version: `propose` turns the rule in force (read under the asset's
-    lock) into the new one; audited with the caller as actor."""
+    lock) into the new one; the change is replayed over the stored scores first and a risky
+    one (a confirmed fault missed, too little history) needs `confirm` to name each risk and
+    a longer reason (BadInput otherwise); audited with the caller as actor and the risks."""
     asset = lock_asset(session, asset_id=asset_id)
     model, current = _in_force(session, registry, asset)
-    change = propose(threshold_q.rule_of(current), model)
+    current_rule = threshold_q.rule_of(current)
+    change = propose(current_rule, model)
+    risk = preview_change(session, asset=asset, model=model, current=current_rule, proposed=change.rule).risk
+    confirm_change(risk, confirm_missed=confirm.missed, confirm_short_history=confirm.short_history, reason=reason)
     row = threshold_q.set_threshold(
         session, asset=asset, rule=change.rule, origin=change.origin, reason=reason, actor=caller.name,
-        manifest=model.manifest, budget_per_week=change.budget_per_week, details=change.details,
+        manifest=model.manifest, budget_per_week=change.budget_per_week, details={**(change.details or {}), **risk.audit()},
     )
     return row, model
 
@@ -108,3 +129,53 @@ def shelve_asset(
 def unshelve_asset(session: Session, *, caller: Caller, asset_id: str) -> Asset:
     asset = lock_asset(session, asset_id=asset_id)
     return threshold_q.unshelve(session, asset=asset, actor=caller.name)
+
+
+# --------------------------------------------------------------------------- retune checks
+
+
+@dataclass(frozen=True)
+class Previewed:
+    """A proposal replayed over the asset's stored scores, with its risks (service/retune_risk.py)."""
+
+    since: datetime
+    until: datetime
+    past: list[PastAlert]
+    result: Preview
+    risk: RetuneRisk
+
+
+def preview_change(
+    db: Session, *, asset: Asset, model: LoadedModel, current: AlertRule, proposed: AlertRule,
+    since: datetime | None = None, until: datetime | None = None,
+) -> Previewed:
+    """The preview the endpoint answers and the check a change must pass (the PUT and the
+    dashboard's Apply): the asset's stored scores in [since, until) replayed under both rules.
+    Default range: the PREVIEW_DEFAULT before the asset's newest stored window."""
+    if until is None:
+        # The asset's newest stored window (now, for a live asset; the replay's end for history).
+        until = just_after(asset.last_window_end_ms) if asset.last_window_end_ms is not None else datetime.now(timezone.utc)
+    since = since or until - PREVIEW_DEFAULT
+    if until <= since:
+        raise BadInput("until must be after since", field="body.until")
+    series = threshold_q.score_series(db, asset_id=asset.asset_id, model_id=model.model_id, since=since, until=until)
+    past = threshold_q.past_alerts(db, asset_id=asset.asset_id, since=since, until=until)
+    try:
+        cal = calibration_set(model.calibration, model.manifest)
+    except ValueError:
+        cal = None
+    result = preview(series, proposed, current, past, cal)
+    risk = assess(result, past, current_warning=current.warning, window_period_s=model.manifest.window_period_s)
+    return Previewed(since, until, past, result, risk)
+
+
+def confirm_change(risk: RetuneRisk, *, confirm_missed: list[int], confirm_short_history: bool, reason: str) -> None:
+    """BadInput naming the confirmation field and the risk when a risky change is not confirmed."""
+    try:
+        check_confirmation(risk, confirm_missed=confirm_missed, confirm_short_history=confirm_short_history, reason=reason)
+    except ConfirmationMissing as e:
+        raise BadInput(
+            str(e), field=f"body.{e.field}",
+            details={"needs_confirmation": risk.needs_confirmation, "missed_confirmed_faults": risk.missed_ids,
+                     "history_days": round(risk.history_days, 3), "min_reason": MIN_RISKY_REASON},
+        ) from None

@@ -1,6 +1,6 @@
 """`create_app(settings)`: the FastAPI application, with a lifespan that opens the
 database (upgrading a new one), loads and validates the models, and runs retention
-pruning in the background. Nothing is created at import time.
+pruning and the notification sender (service/notifier.py) in the background. Nothing is created at import time.
 
 Routers are included from the modules that exist, so the halves of the service can land
 independently: readings and health (core), alerts, thresholds and models (alerts work),
@@ -42,6 +42,7 @@ API_ROUTER_MODULES = (
     "service.api.thresholds",
     "service.api.models",
     "service.api.keys",
+    "service.api.notify",
 )
 WEB_ROUTER_MODULE = "service.web.routes"
 STATIC_DIR = Path(__file__).parent / "web" / "static"
@@ -103,6 +104,12 @@ async def _retention_loop(app: FastAPI) -> None:
                 if n:
                     app.state.metrics.pruned_rows.inc(n, table=table)
         await asyncio.sleep(settings.retention_interval_s)
+
+
+async def _sender_loop(app: FastAPI) -> None:
+    from service.notifier import sender_loop  # notifications (service/notifier.py): its own shutdown waits
+
+    await sender_loop(app)
 
 
 def _prune_once(db: Database, cutoff: datetime, prune: Any) -> dict[str, int]:
@@ -330,13 +337,15 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.state.started_at = datetime.now(timezone.utc)
         await _warm_up(app, db)
         task = asyncio.create_task(_retention_loop(app)) if settings.retention_days > 0 else None
+        sender = asyncio.create_task(_sender_loop(app)) if settings.notify_enabled else None
         try:
             yield
         finally:
-            if task is not None:
-                task.cancel()
-                with contextlib.suppress(asyncio.CancelledError):
-                    await task
+            for background in (task, sender):
+                if background is not None:
+                    background.cancel()
+                    with contextlib.suppress(asyncio.CancelledError):
+                        await background
             db.dispose()
             gc.unfreeze()
 

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from pydantic import Field, SecretStr, field_validator
+from pydantic import Field, SecretStr, ValidationInfo, field_validator
 from pydantic_settings import BaseSettings, PydanticBaseSettingsSource, SettingsConfigDict
 
 from service.legacy_env import LegacyPrefixSource, warn_if_old_default_database
@@ -61,6 +61,28 @@ class Settings(BaseSettings):
     retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
     retention_interval_s: float = Field(default=3600.0, gt=0)
 
+    # Notifications (service/notifier.py, service/notify_channels.py): the background sender
+    # delivers the outbox the alert transitions write; routes are managed by admins.
+    notify_enabled: bool = Field(default=True, description="run the background sender in this process")
+    notify_poll_s: float = Field(default=2.0, gt=0, description="seconds between looks at the outbox when it is empty")
+    notify_timeout_s: float = Field(default=10.0, gt=0, description="per delivery (HTTP request or SMTP session)")
+    notify_lease_s: float = Field(default=60.0, gt=0, description="a claimed message not marked within this is claimed again")
+    notify_max_attempts: int = Field(default=8, ge=1, description="tries before a message is dead-lettered")
+    notify_backoff_s: float = Field(default=15.0, gt=0, description="wait after the first failure; doubles each time")
+    notify_backoff_max_s: float = Field(default=3600.0, gt=0)
+    notify_unack_after_min: float = Field(default=30.0, ge=0, description="remind when still unacknowledged; 0 turns it off")
+    public_url: str | None = Field(default=None, description="the dashboard's base URL, for links in messages")
+    smtp_host: str | None = Field(default=None, description="e-mail routes need it")
+    smtp_port: int = Field(default=25, ge=1, le=65535)
+    smtp_user: str | None = None
+    smtp_password: SecretStr | None = None
+    smtp_from: str = "kilter@localhost"
+    smtp_starttls: bool = Field(default=False, description="upgrade the SMTP session with STARTTLS before logging in")
+    smtp_ca_file: Path | None = Field(default=None, description="CA bundle for the relay's certificate (default: the system's)")
+
+    # Dashboard: how often the alert list and alert page refresh themselves (a light poll).
+    dashboard_refresh_s: float = Field(default=15.0, ge=1, le=3600, description="seconds between the pages' live refreshes")
+
     @classmethod
     def settings_customise_sources(
         cls,
@@ -92,6 +114,14 @@ class Settings(BaseSettings):
     @property
     def trusted_proxy_list(self) -> list[str]:
         return [x.strip() for x in self.trusted_proxies.split(",") if x.strip()]
+
+    @field_validator("notify_lease_s")
+    @classmethod
+    def _lease(cls, v: float, info: ValidationInfo) -> float:
+        timeout = info.data.get("notify_timeout_s", 10.0)
+        if v <= 2 * timeout:
+            raise ValueError(f"notify_lease_s must exceed twice notify_timeout_s ({timeout} s): a slow delivery must not outlive its lease")
+        return v
 
     @field_validator("database_url")
     @classmethod

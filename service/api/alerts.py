@@ -10,6 +10,7 @@ from datetime import datetime, timedelta, timezone
 from typing import Annotated
 
 from fastapi import APIRouter, Path, Query
+from sqlalchemy.orm import Session
 
 from service.alert_health import chatter_horizon_ms, health
 from service import actions
@@ -30,6 +31,7 @@ from service.api.schemas_alerts import (
 )
 from service.db import alerts as q
 from service.errors import BadInput, ModelError
+from service.models_registry import ModelRegistry
 
 router = APIRouter(prefix="/v1", tags=["alerts"])
 
@@ -54,6 +56,9 @@ def list_alerts(
     until: Annotated[UtcIn | None, Query()] = None,
     limit: Annotated[int, Query(ge=1, le=q.MAX_PAGE)] = 50,
     cursor: Annotated[str | None, Query(max_length=200, description="next_cursor of the previous page")] = None,
+    sort: Annotated[
+        str, Query(description="priority: active, unacknowledged, critical first, newest first within each; newest: by opened_at")
+    ] = "priority",
 ) -> AlertPage:
     rows, next_cursor = q.list_alerts(
         db,
@@ -66,8 +71,10 @@ def list_alerts(
         limit=limit,
         cursor=cursor,
         allowed_assets=caller.assets,
+        sort=sort,
     )
-    return AlertPage(items=[alert_out(a) for a in rows], next_cursor=next_cursor)
+    warnings = q.warning_levels(db, rows)
+    return AlertPage(items=[alert_out(a, warnings.get(a.threshold_version_id or 0)) for a in rows], next_cursor=next_cursor)
 
 
 @router.get("/alerts/{alert_id}", response_model=AlertDetail)
@@ -84,7 +91,7 @@ def _window_period(registry: RegistryDep, model_id: str) -> float | None:
 
 
 def _detail(detail: q.AlertDetail, registry: RegistryDep) -> AlertDetail:
-    base = alert_out(detail.alert)
+    base = alert_out(detail.alert, detail.threshold.warning if detail.threshold is not None else None)
     threshold = (
         threshold_out(detail.threshold, _window_period(registry, detail.threshold.model_id)) if detail.threshold is not None else None
     )
@@ -95,7 +102,7 @@ def _detail(detail: q.AlertDetail, registry: RegistryDep) -> AlertDetail:
 @router.post("/alerts/{alert_id}/acknowledge", response_model=AlertOut)
 def acknowledge(alert_id: AlertId, db: WriteSession, caller: MaintenanceCaller, body: AcknowledgeIn | None = None) -> AlertOut:
     alert = actions.acknowledge_alert(db, caller=caller, alert_id=alert_id, note=body.note if body else None)
-    out = alert_out(alert)
+    out = alert_out(alert, q.warning_levels(db, [alert]).get(alert.threshold_version_id or 0))
     db.commit()
     return out
 
@@ -103,7 +110,7 @@ def acknowledge(alert_id: AlertId, db: WriteSession, caller: MaintenanceCaller, 
 @router.post("/alerts/{alert_id}/close", response_model=AlertOut)
 def close(alert_id: AlertId, body: CloseIn, db: WriteSession, caller: MaintenanceCaller) -> AlertOut:
     alert = actions.close_alert(db, caller=caller, alert_id=alert_id, outcome=body.outcome, note=body.note)
-    out = alert_out(alert)
+    out = alert_out(alert, q.warning_levels(db, [alert]).get(alert.threshold_version_id or 0))
     db.commit()
     return out
 
@@ -125,6 +132,13 @@ def alert_health(
     until: Annotated[UtcIn | None, Query(description="default: the fleet's newest window end, else now")] = None,
     operator_positions: Annotated[int, Query(ge=1, le=1000, description="desks sharing the fleet's alerts")] = 1,
 ) -> AlertHealthOut:
+    return health_report(db, registry, since=since, until=until, operator_positions=operator_positions)
+
+
+def health_report(
+    db: Session, registry: ModelRegistry, *, since: datetime | None, until: datetime | None, operator_positions: int = 1
+) -> AlertHealthOut:
+    """The alert-system health figures (the endpoint and the dashboard's page answer these)."""
     if until is None:
         newest = q.newest_window_end(db)
         until = q.just_after(q.to_ms(newest)) if newest is not None else datetime.now(timezone.utc)

@@ -64,6 +64,8 @@ class AlertOut(BaseModel):
     duration_s: float = Field(description="opened to returned, else to last seen")
     peak_score: float
     peak_at: UtcOut
+    warning_level: float | None = Field(default=None, description="the warning level in force when it opened")
+    peak_ratio: float | None = Field(default=None, description="peak_score / warning_level: 4.2 reads '4.2x warning'")
     top_channels: list[ChannelShare]
     model_id: str
     model_version: str
@@ -159,6 +161,14 @@ class PreviewIn(ThresholdProposal):
 class ThresholdPut(ThresholdProposal):
     reason: Reason
     rollback_to: int | None = Field(default=None, ge=1, description="copy this old version as a new one")
+    confirm_missed: list[int] = Field(
+        default_factory=list, max_length=1000,
+        description="ids of alerts closed as confirmed faults that the new levels would have missed (preview risk.missed_confirmed_faults): "
+        "a change that misses one is applied only when each is named here, with a reason of at least 15 characters",
+    )
+    confirm_short_history: bool = Field(
+        default=False, description="accept a change previewed on less than 7 asset-days of stored windows (preview risk.needs_confirmation)"
+    )
 
     @model_validator(mode="after")
     def _rollback_alone(self) -> ThresholdPut:
@@ -206,6 +216,20 @@ class StoredAlertCounts(BaseModel):
     not_closed: int
 
 
+class RiskOut(BaseModel):
+    needs_confirmation: list[Literal["missed_confirmed_faults", "short_history"]] = Field(
+        description="what a PUT of this proposal must confirm (confirm_missed, confirm_short_history)"
+    )
+    missed_confirmed_faults: list[int] = Field(description="alerts closed as confirmed faults that no proposed alert meets")
+    confirmed_faults_in_range: int
+    history_days: float = Field(description="asset-days of stored windows replayed")
+    min_history_days: float
+    warning_factor: float = Field(description="proposed warning / warning in force")
+    big_change: bool = Field(description="more than 3x or less than 1/3 of the level in force")
+    statements: list[str]
+    min_reason: int = Field(description="characters the reason needs for this change")
+
+
 class PreviewOut(BaseModel):
     asset_id: str
     since: UtcOut
@@ -223,6 +247,7 @@ class PreviewOut(BaseModel):
     stored_alerts: StoredAlertCounts = Field(description="alerts actually stored in the range, by outcome")
     expected_false_alarms_per_week: float | None = Field(description="from the model's calibration scores")
     current_expected_false_alarms_per_week: float | None
+    risk: RiskOut
     note: str
 
 
@@ -318,8 +343,9 @@ def _seconds(a: datetime, b: datetime) -> float:
     return (b - a).total_seconds()
 
 
-def alert_out(alert: Any) -> AlertOut:
-    """An alerts row (service.db.models.Alert) as its response model."""
+def alert_out(alert: Any, warning_level: float | None = None) -> AlertOut:
+    """An alerts row (service.db.models.Alert) as its response model; `warning_level` is the
+    warning level in force when it opened (service.db.alerts.warning_levels)."""
     end = alert.returned_at or alert.last_seen_at
     return AlertOut(
         id=alert.id,
@@ -333,6 +359,8 @@ def alert_out(alert: Any) -> AlertOut:
         duration_s=max(_seconds(alert.opened_at, end), 0.0),
         peak_score=alert.peak_score,
         peak_at=alert.peak_at,
+        warning_level=warning_level,
+        peak_ratio=alert.peak_score / warning_level if warning_level else None,
         top_channels=[ChannelShare(channel=c["channel"], share=float(c["share"])) for c in (alert.top_channels or [])],
         model_id=alert.model_id,
         model_version=alert.model_version,

@@ -12,10 +12,12 @@ proposed timing, critical at the same ratio), or stay as they are.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from typing import Annotated
 
 from fastapi import APIRouter, Path
+from sqlalchemy.orm import Session
 
 from service import actions
 from service.alerting import AlertRule
@@ -24,6 +26,7 @@ from service.api.schemas_alerts import (
     BudgetOut,
     PreviewIn,
     PreviewOut,
+    RiskOut,
     ShelveIn,
     ShelveOut,
     StoredAlertCounts,
@@ -40,12 +43,13 @@ from service.db.alerts import from_ms, just_after
 from service.db.models import Asset, ThresholdVersion
 from service.errors import BadInput
 from service.models_registry import LoadedModel, ModelRegistry
-from service.retune import TIMING_FIELDS, Proposal, ProposedAlert, calibration_set, preview, propose_rule
+from service.retune import TIMING_FIELDS, PastAlert, Preview, Proposal, ProposedAlert, calibration_set, preview, propose_rule
+from service.retune_risk import MIN_HISTORY_DAYS, MIN_RISKY_REASON, ConfirmationMissing, RetuneRisk, assess, check_confirmation
 
 router = APIRouter(prefix="/v1/assets/{asset_id}", tags=["thresholds"])
 
 AssetId = Annotated[str, Path(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9_.\-]+$")]
-PREVIEW_DEFAULT = timedelta(days=30)
+PREVIEW_DEFAULT = actions.PREVIEW_DEFAULT
 PREVIEW_NOTE = (
     "Replayed from a quiet rule state at the first stored window in the range, shelving not "
     "replayed; expected false alarms per week come from the model's held-out normal calibration scores."
@@ -129,26 +133,28 @@ def _would_open(alerts: list[ProposedAlert]) -> list[WouldOpenOut]:
     ]
 
 
+def risk_out(risk: RetuneRisk) -> RiskOut:
+    return RiskOut(
+        needs_confirmation=risk.needs_confirmation,
+        missed_confirmed_faults=risk.missed_ids,
+        confirmed_faults_in_range=risk.confirmed_total,
+        history_days=risk.history_days,
+        min_history_days=MIN_HISTORY_DAYS,
+        warning_factor=risk.warning_factor,
+        big_change=risk.big_change,
+        statements=risk.statements() + ([risk.change_note()] if risk.big_change else []),
+        min_reason=MIN_RISKY_REASON if risk.needs_confirmation else 3,
+    )
+
+
 @router.post("/threshold/preview", response_model=PreviewOut)
 def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller: OperatorCaller, registry: RegistryDep) -> PreviewOut:
     asset = q.get_asset(db, asset_id=asset_id)
     model = _model(registry, asset)
     current = q.rule_of(_in_force(db, asset, model))
     proposed = _propose(body, current, model)
-    until = body.until
-    if until is None:
-        # The asset's newest stored window (now, for a live asset; the replay's end for history).
-        until = just_after(asset.last_window_end_ms) if asset.last_window_end_ms is not None else datetime.now(timezone.utc)
-    since = body.since or until - PREVIEW_DEFAULT
-    if until <= since:
-        raise BadInput("until must be after since", field="body.until")
-    series = q.score_series(db, asset_id=asset_id, model_id=model.model_id, since=since, until=until)
-    past = q.past_alerts(db, asset_id=asset_id, since=since, until=until)
-    try:
-        cal = calibration_set(model.calibration, model.manifest)
-    except ValueError:
-        cal = None
-    result = preview(series, proposed.rule, current, past, cal)
+    done = actions.preview_change(db, asset=asset, model=model, current=current, proposed=proposed.rule, since=body.since, until=body.until)
+    since, until, past, result = done.since, done.until, done.past, done.result
     counts = q.stored_counts(past)
     budget = (
         BudgetOut(
@@ -176,6 +182,7 @@ def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller
         stored_alerts=StoredAlertCounts(**counts.__dict__),
         expected_false_alarms_per_week=result.expected_false_alarms_per_week,
         current_expected_false_alarms_per_week=result.current_expected_false_alarms_per_week,
+        risk=risk_out(done.risk),
         note=PREVIEW_NOTE,
     )
 
@@ -185,8 +192,11 @@ def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, calle
     if body.rollback_to is not None:
         row, model = actions.rollback_threshold(db, registry, caller=caller, asset_id=asset_id, to_version=body.rollback_to, reason=body.reason)
     else:
-        row, model = actions.change_threshold(db, registry, caller=caller, asset_id=asset_id, reason=body.reason,
-                                              propose=lambda current, m: _change(body, current, m))
+        row, model = actions.change_threshold(
+            db, registry, caller=caller, asset_id=asset_id, reason=body.reason,
+            propose=lambda current, m: _change(body, current, m),
+            confirm=actions.Confirmation(missed=list(body.confirm_missed or []), short_history=bool(body.confirm_short_history)),
+        )
     out = threshold_out(row, model.manifest.window_period_s)
     db.commit()
     return out

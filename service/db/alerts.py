@@ -21,7 +21,7 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from typing import Any
 
-from sqlalchemy import and_, func, or_, select
+from sqlalchemy import and_, case, func, or_, select
 from sqlalchemy.orm import Session
 
 from service.alert_health import AlertRecord, AssetSpan
@@ -29,6 +29,7 @@ from service.db.models import ALERT_STATES, CONDITIONS, OUTCOMES, SEVERITIES, Al
 from service.errors import BadInput, Conflict, NotFound
 
 MAX_PAGE = 200
+SORTS = ("priority", "newest")
 _EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
 
 
@@ -46,21 +47,40 @@ def _to_us(t: datetime) -> int:
     return (delta.days * 86400 + delta.seconds) * 1_000_000 + delta.microseconds
 
 
-def encode_cursor(opened_at: datetime, alert_id: int) -> str:
-    """Opaque keyset cursor: base64 of (opened_at in epoch microseconds, id)."""
-    raw = json.dumps([_to_us(opened_at), int(alert_id)], separators=(",", ":")).encode()
+def encode_cursor(opened_at: datetime, alert_id: int, rank: int | None = None) -> str:
+    """Opaque keyset cursor: base64 of (opened_at in epoch microseconds, id), with the
+    priority rank in front when the list is sorted by priority."""
+    key = [_to_us(opened_at), int(alert_id)] if rank is None else [int(rank), _to_us(opened_at), int(alert_id)]
+    raw = json.dumps(key, separators=(",", ":")).encode()
     return base64.urlsafe_b64encode(raw).decode().rstrip("=")
 
 
-def decode_cursor(cursor: str) -> tuple[datetime, int]:
+def decode_cursor(cursor: str, *, ranked: bool = False) -> tuple[int | None, datetime, int]:
+    """(rank or None, opened_at, id) of a cursor; BadInput if it is not one of this sort's."""
     try:
         raw = base64.urlsafe_b64decode(cursor + "=" * (-len(cursor) % 4))
-        us, alert_id = json.loads(raw)
-        if not isinstance(us, int) or not isinstance(alert_id, int):
+        key = json.loads(raw)
+        if not isinstance(key, list) or len(key) != (3 if ranked else 2) or not all(isinstance(k, int) for k in key):
             raise ValueError
-        return _EPOCH + timedelta(microseconds=us), alert_id
+        rank = key.pop(0) if ranked else None
+        us, alert_id = key
+        return rank, _EPOCH + timedelta(microseconds=us), alert_id
     except (ValueError, TypeError, binascii.Error, json.JSONDecodeError):
-        raise BadInput("cursor is not one this service issued: pass next_cursor from the previous page unchanged", field="query.cursor") from None
+        raise BadInput(
+            "cursor is not one this service issued for this sort: pass next_cursor from the previous page unchanged", field="query.cursor"
+        ) from None
+
+
+def priority_rank() -> Any:
+    """What needs someone first, as one integer (0 first): not closed before closed, then
+    active before returned, unacknowledged before acknowledged, critical before warning.
+    A closed alert ranks 8 whatever its condition and severity."""
+    return case(
+        (Alert.state == "closed", 8),
+        else_=case((Alert.condition == "active", 0), else_=4)
+        + case((Alert.state == "unacknowledged", 0), else_=2)
+        + case((Alert.severity == "critical", 0), else_=1),
+    )
 
 
 def _check_choice(value: str | None, allowed: Sequence[str], field: str) -> None:
@@ -80,14 +100,20 @@ def list_alerts(
     limit: int = 50,
     cursor: str | None = None,
     allowed_assets: Collection[str] | None = None,
+    sort: str = "priority",
 ) -> tuple[list[Alert], str | None]:
-    """One page of alerts, newest first (opened_at, then id, descending), and the next cursor.
+    """One page of alerts and the next cursor. `sort="priority"` (the default): what needs
+    someone first (priority_rank: active unacknowledged critical first), newest first within
+    a rank; `sort="newest"`: opened_at, then id, descending.
 
     `since`/`until` keep alerts whose span [opened_at, last_seen_at] meets [since, until).
     Keyset pagination: a page starts strictly after the cursor's (opened_at, id), so alerts
     that arrive between page fetches never shift or repeat the rows of later pages.
     `allowed_assets` (a caller limited to assets) narrows the list; None means every asset.
+    An alert whose rank changes between page fetches (acknowledged, returned) moves to its
+    new place: it may then be seen twice or not at all in one walk of the priority order.
     """
+    _check_choice(sort, SORTS, "sort")
     _check_choice(state, ALERT_STATES, "state")
     _check_choice(severity, SEVERITIES, "severity")
     _check_choice(condition, CONDITIONS, "condition")
@@ -110,14 +136,30 @@ def list_alerts(
         q = q.where(Alert.last_seen_at >= since)
     if until is not None:
         q = q.where(Alert.opened_at < until)
+    ranked = sort == "priority"
+    rank = priority_rank()
     if cursor is not None:
-        at, last_id = decode_cursor(cursor)
-        q = q.where(or_(Alert.opened_at < at, and_(Alert.opened_at == at, Alert.id < last_id)))
-    rows = list(session.scalars(q.order_by(Alert.opened_at.desc(), Alert.id.desc()).limit(limit + 1)))
-    more = len(rows) > limit
-    rows = rows[:limit]
-    next_cursor = encode_cursor(rows[-1].opened_at, rows[-1].id) if more and rows else None
+        last_rank, at, last_id = decode_cursor(cursor, ranked=ranked)
+        after = or_(Alert.opened_at < at, and_(Alert.opened_at == at, Alert.id < last_id))
+        q = q.where(or_(rank > last_rank, and_(rank == last_rank, after)) if ranked else after)
+    order = (rank, Alert.opened_at.desc(), Alert.id.desc()) if ranked else (Alert.opened_at.desc(), Alert.id.desc())
+    found = session.execute(q.add_columns(rank.label("rank")).order_by(*order).limit(limit + 1)).all()
+    more = len(found) > limit
+    found = found[:limit]
+    rows = [alert for alert, _ in found]
+    next_cursor = None
+    if more and found:
+        last, last_rank = found[-1]
+        next_cursor = encode_cursor(last.opened_at, last.id, int(last_rank) if ranked else None)
     return rows, next_cursor
+
+
+def warning_levels(session: Session, alerts: Sequence[Alert]) -> dict[int, float]:
+    """The warning level in force when each alert opened ({threshold version id: warning})."""
+    ids = sorted({a.threshold_version_id for a in alerts if a.threshold_version_id is not None})
+    if not ids:
+        return {}
+    return dict(session.execute(select(ThresholdVersion.id, ThresholdVersion.warning).where(ThresholdVersion.id.in_(ids))).all())
 
 
 @dataclass(frozen=True)

@@ -296,3 +296,57 @@ class AuthFailure(Base):
     id: Mapped[int] = mapped_column(BigId, primary_key=True)
     address: Mapped[str] = mapped_column(String(64))
     at_ms: Mapped[int] = mapped_column(BigInteger)  # epoch milliseconds, UTC
+
+
+# --------------------------------------------------------------------------- notifications (issue 14)
+# Routing rules and the outbox the alert transitions write in their own transaction
+# (service/db/outbox.py); the background sender (service/notifier.py) delivers them.
+
+NOTIFY_CHANNELS = ("webhook", "email")
+NOTIFY_EVENTS = ("opened", "escalated", "returned", "unacknowledged")
+OUTBOX_STATES = ("pending", "sending", "sent", "dead")
+
+
+class NotifyRoute(Base):
+    """Who hears about which alerts: a channel and target, narrowed by asset and severity."""
+
+    __tablename__ = "notify_routes"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(64), unique=True)
+    channel: Mapped[str] = mapped_column(String(16))  # webhook | email
+    target: Mapped[str] = mapped_column(Text)  # a webhook URL, or comma-separated e-mail addresses
+    asset_id: Mapped[str | None] = mapped_column(String(64), default=None)  # None = every asset
+    min_severity: Mapped[str] = mapped_column(String(16), default="warning")  # warning = both, critical = critical only
+    events: Mapped[list[Any]] = mapped_column(JSON)  # subset of NOTIFY_EVENTS
+    # Signs webhook bodies (HMAC-SHA256); kept as given because signing needs it. None for e-mail.
+    secret: Mapped[str | None] = mapped_column(String(128), default=None)
+    enabled: Mapped[int] = mapped_column(Integer, default=1)
+    created_by: Mapped[str] = mapped_column(String(128))
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+
+
+class NotifyOutbox(Base):
+    """One message to deliver: written with the alert transition, claimed under a lease."""
+
+    __tablename__ = "notify_outbox"
+    __table_args__ = (
+        Index("ix_notify_outbox_status_due", "status", "next_attempt_at"),
+        Index("ix_notify_outbox_alert", "alert_id"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True)
+    # (alert, transition, route) once: a second write of the same transition fails here.
+    idempotency_key: Mapped[str] = mapped_column(String(128), unique=True)
+    route_id: Mapped[int] = mapped_column(ForeignKey("notify_routes.id"))
+    alert_id: Mapped[int | None] = mapped_column(ForeignKey("alerts.id"), default=None)  # None for a test message
+    kind: Mapped[str] = mapped_column(String(16))  # NOTIFY_EVENTS or "test"
+    payload: Mapped[dict[str, Any]] = mapped_column(JSON)
+    status: Mapped[str] = mapped_column(String(16), default="pending")  # OUTBOX_STATES
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    next_attempt_at: Mapped[datetime] = mapped_column(default=utcnow)
+    lease_until: Mapped[datetime | None] = mapped_column(default=None)
+    lease_owner: Mapped[str | None] = mapped_column(String(64), default=None)
+    last_error: Mapped[str | None] = mapped_column(Text, default=None)
+    created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    sent_at: Mapped[datetime | None] = mapped_column(default=None)

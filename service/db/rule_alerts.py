@@ -14,6 +14,7 @@ from typing import Any
 from sqlalchemy import Connection
 
 from service.db import ingest_sql as store
+from service.db import outbox
 from service.db.ingest_sql import AlertRow
 
 RULE_ACTOR = "rule"
@@ -33,7 +34,9 @@ def open_alert(
         "outcome": None, "close_note": None,
     })
     store.insert_event(conn, alert_id=alert_id, at=at, kind="opened", actor=RULE_ACTOR, details={"severity": severity, **details})
-    return AlertRow(alert_id, severity, at, float(score), at, top_channels, active_key=asset_id)
+    alert = AlertRow(alert_id, severity, at, float(score), at, top_channels, active_key=asset_id)
+    outbox.enqueue_transition(conn, "opened", alert, at=at, asset_id=asset_id)
+    return alert
 
 
 def extend_alert(alert: AlertRow, *, at: datetime, score: float, top_channels: list[dict[str, Any]]) -> None:
@@ -51,6 +54,7 @@ def escalate_alert(conn: Connection, alert: AlertRow, *, at: datetime, details: 
     alert.severity = "critical"
     alert.dirty = True
     store.insert_event(conn, alert_id=alert.id, at=at, kind="escalated", actor=RULE_ACTOR, details={"severity": "critical", **details})
+    outbox.enqueue_transition(conn, "escalated", alert, at=at)
 
 
 def return_alert(conn: Connection, alert: AlertRow, *, at: datetime, details: dict[str, Any]) -> None:
@@ -60,3 +64,4 @@ def return_alert(conn: Connection, alert: AlertRow, *, at: datetime, details: di
     alert.active_key = None
     store.save_alert(conn, alert)
     store.insert_event(conn, alert_id=alert.id, at=at, kind="returned", actor=RULE_ACTOR, details=details)
+    outbox.enqueue_transition(conn, "returned", alert, at=at)

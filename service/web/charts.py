@@ -10,6 +10,14 @@ Charts:
                    alerts) and an optional preview (proposed levels drawn dashed);
 * contribution_bars per-channel share of the window residual, largest first;
 * readings_chart   raw readings of a few channels, one panel per channel with its unit.
+
+One scale rule for score charts: the score axis is always logarithmic, from the lowest score
+(but no lower than a twentieth of the lowest level drawn, nor above two thirds of it) to one and a half times the larger
+of the highest score and the highest level. Anomaly scores range over orders of magnitude
+(a fault may score 15x the warning level, normal windows a tenth of it), and a log axis
+keeps the warning and critical lines apart and readable whatever the peak, so every alert's
+chart reads the same way; scores below the floor sit on the bottom edge. Readings charts
+stay linear (engineering units, where differences matter).
 """
 
 from __future__ import annotations
@@ -35,6 +43,7 @@ __all__ = [
     "decimate",
 ]
 
+LOG_FLOOR_DIVISOR = 20.0  # the score axis starts at the lowest level / 20 (or the lowest score above it)
 MAX_DRAWN_POINTS = 2400  # per line: more than the chart has pixels, so nothing visible is lost
 
 
@@ -113,19 +122,24 @@ class _Frame:
 
 
 def format_number(v: float, digits: int = 3) -> str:
-    """A short human number: 3 significant digits, no exponent for everyday magnitudes."""
+    """A short human number: 3 significant digits and never an exponent (people read
+    "1.2 million" and "< 0.001", not 1.2e+06 and 1.5e-05)."""
     if v is None or not math.isfinite(v):
         return "–"
     if v == 0:
         return "0"
     mag = abs(v)
-    if 1e-3 <= mag < 1e6:
-        decimals = max(0, digits - 1 - int(math.floor(math.log10(mag))))
-        text = f"{v:.{decimals}f}"
-        if "." in text:
-            text = text.rstrip("0").rstrip(".")
-        return text
-    return f"{v:.{digits - 1}e}"
+    if mag < 1e-3:
+        return "< 0.001" if v > 0 else "> -0.001"
+    if mag >= 1e6:
+        for size, word in ((1e12, "trillion"), (1e9, "billion"), (1e6, "million")):
+            if mag >= size:
+                return f"{format_number(v / size, digits)} {word}"
+    decimals = max(0, digits - 1 - int(math.floor(math.log10(mag))))
+    text = f"{v:.{decimals}f}"
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")
+    return text
 
 
 def nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:
@@ -330,8 +344,7 @@ def score_chart(
 ) -> Markup:
     """Window score line with threshold lines, an optional shaded span and span lanes.
 
-    The y axis turns logarithmic when the largest score is over 8x the highest level
-    drawn, so the thresholds stay readable next to a large peak.
+    The y axis is logarithmic on every score chart (the module's scale rule).
     """
     if len(t_ms) != len(scores):
         raise ValueError(f"t_ms has {len(t_ms)} points but scores has {len(scores)}")
@@ -345,13 +358,12 @@ def score_chart(
     top_level = max(levels)
     s_max = max(finite) if finite else top_level
     positives = [s for s in finite if s > 0]
-    use_log = bool(positives) and s_max > 8 * top_level
-    if use_log:
-        y0 = min(min(positives), min(levels)) / 1.5
-        y1 = s_max * 1.5
-    else:
-        y0 = 0.0
-        y1 = max(s_max, top_level) * 1.12
+    use_log = True  # the one scale rule (module docstring)
+    lowest = min(positives) if positives else 0.0
+    # From the lowest score, but no lower than lowest level / 20 and low enough that the
+    # lowest level's line stands clear of the bottom edge.
+    y0 = min(max(min(levels) / LOG_FLOOR_DIVISOR, lowest), min(levels) / 1.5)
+    y1 = max(s_max, top_level) * 1.5
     t0, t1 = t_range if t_range else (min(t_ms), max(t_ms))
     if highlight:
         t0, t1 = min(t0, highlight.start_ms), max(t1, highlight.end_ms)

@@ -11,14 +11,15 @@ from urllib.parse import urlencode
 from sqlalchemy.orm import Session
 
 from service.alerting import AlertRule
-from service.api.thresholds import PREVIEW_DEFAULT
+from service.actions import PREVIEW_DEFAULT, preview_change
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
 from service.db import thresholds as threshold_q
 from service.db.models import Alert
-from service.errors import ModelError, NotFound
+from service.errors import KilterError, ModelError, NotFound
 from service.models_registry import LoadedModel, ModelRegistry
 from service.retune import calibration_set, expected_false_alarms_per_week, levels_for_budget, preview
+from service.retune_risk import MIN_HISTORY_DAYS, MIN_RISKY_REASON, RetuneRisk, fmt_days
 from service.settings import Settings
 from service.web import charts, views
 from service.web.access import WebUser
@@ -44,8 +45,15 @@ def silent_after(settings: Settings, registry: ModelRegistry) -> dict[str, float
     return {m.model_id: settings.silent_after_windows * m.manifest.window_period_s for m in registry.models()}
 
 
-def alert_row(a: Alert) -> dict[str, Any]:
-    """One row of the alert list."""
+def fmt_ratio(peak: float, warning: float | None) -> str:
+    """The peak as a multiple of the warning level in force: '4.2x warning'."""
+    if not warning:
+        return ""
+    return f"{views.fmt_score(peak / warning)}x warning"
+
+
+def alert_row(a: Alert, warning: float | None = None) -> dict[str, Any]:
+    """One row of the alert list; `warning` is the level in force when it opened."""
     end = a.returned_at or a.last_seen_at
     top = a.top_channels[0]["channel"] if a.top_channels else "–"
     return {
@@ -57,7 +65,122 @@ def alert_row(a: Alert) -> dict[str, Any]:
         "opened": views.fmt_time(a.opened_at),
         "duration": views.fmt_duration((end - a.opened_at).total_seconds()),
         "peak": views.fmt_score(a.peak_score),
+        "ratio": fmt_ratio(a.peak_score, warning),
         "top_channel": top,
+    }
+
+
+STATE_PHRASES = {"unacknowledged": "need acknowledging", "acknowledged": "acknowledged", "closed": "closed"}
+LIST_ORDER = {
+    "priority": "active before returned, unacknowledged before acknowledged, critical before warning, then newest first; closed last",
+    "newest": "newest first",
+}
+
+
+def alert_list(
+    db: Session, *, user: WebUser, filters: dict[str, str], cursor: str | None, page_size: int, sort: str
+) -> dict[str, Any]:
+    """The alert list page (and its live fragment): one page of rows in the asked order, the
+    counts per state (following the asset filter) as filter links, pager links."""
+    flashes: list[tuple[str, str]] = []
+    rows: list[Alert] = []
+    next_cursor = None
+    sort = sort if sort in LIST_ORDER else "priority"
+    try:
+        rows, next_cursor = alert_q.list_alerts(
+            db,
+            asset_id=filters["asset"] or None,
+            state=filters["state"] or None,
+            severity=filters["severity"] or None,
+            since=views.parse_utc_local(filters["since"], "Opened from"),
+            until=views.parse_utc_local(filters["until"], "Opened before"),
+            limit=page_size,
+            cursor=cursor or None,
+            allowed_assets=user.caller.assets,
+            sort=sort,
+        )
+    except views.FormValueError as e:
+        flashes.append(("error", str(e)))
+    except KilterError as e:
+        flashes.append(("error", e.message))
+    scope = user.caller.assets
+    if filters["asset"]:  # the tallies follow the asset filter
+        scope = frozenset({filters["asset"]}) if scope is None else scope & {filters["asset"]}
+    counts = alert_q.count_by_state(db, allowed_assets=scope)
+    ids = [a.asset_id for a in readings_q.list_assets(db, now=datetime.now(timezone.utc), silent_after_s={})]
+    kept = {k: v for k, v in filters.items() if v}
+    if sort != "priority":
+        kept["sort"] = sort
+    tallies = [
+        {
+            "state": name,
+            "count": counts.get(name, 0),
+            "phrase": STATE_PHRASES[name],
+            "href": "/alerts?" + urlencode({**{k: v for k, v in kept.items() if k != "state"}, "state": name}),
+            "current": filters["state"] == name,
+        }
+        for name in STATE_PHRASES
+    ]
+    described = ", ".join(f"{k} {v}" for k, v in kept.items() if k != "sort") or "no filters"
+    warnings = alert_q.warning_levels(db, rows)
+    return {
+        "page_title": "Alerts",
+        "section": "alerts",
+        "rows": [alert_row(a, warnings.get(a.threshold_version_id or 0)) for a in rows],
+        "counts": counts,
+        "tallies": tallies,
+        "filters": filters,
+        "sort": sort,
+        "order_text": LIST_ORDER[sort],
+        "asset_ids": ids,
+        "caption": f"{len(rows)} alert{'' if len(rows) == 1 else 's'} on this page ({described}); {LIST_ORDER[sort]}.",
+        "next_href": "/alerts?" + urlencode({**kept, "cursor": next_cursor}) if next_cursor else None,
+        "first_href": "/alerts?" + urlencode(kept) if cursor else None,
+        "flashes": flashes,
+    }
+
+
+def alert_live(detail: alert_q.AlertDetail, model: LoadedModel | None) -> dict[str, Any]:
+    """The parts of the alert page that change while it is open: its facts and history
+    (the page and its live refresh both render them)."""
+    a, th = detail.alert, detail.threshold
+    end = a.returned_at or a.last_seen_at
+    length = end - a.opened_at
+    warning = th.warning if th else None
+    critical = th.critical if th else None
+    if warning is None and model is not None:
+        warning, critical = model.manifest.thresholds.warning, model.manifest.thresholds.critical
+    history = [
+        {
+            "at": views.fmt_time(e.at),
+            "actor": e.actor,
+            "kind": e.kind,
+            "label": views.EVENT_LABELS.get(e.kind, e.kind)
+            + (f" as {views.OUTCOME_LABELS.get((e.details or {}).get('outcome', ''), '')}" if e.kind == "closed" else "")
+            + (" (with the close)" if e.kind == "acknowledged" and (e.details or {}).get("implicit") else ""),
+            "note": e.note,
+        }
+        for e in detail.events
+    ]
+    levels = f"warning {views.fmt_score(warning)}, critical {views.fmt_score(critical)}" + (f" (v{th.version})" if th else "")
+    return {
+        "a": {
+            **alert_row(a, th.warning if th else None),
+            "returned": views.fmt_time(a.returned_at),
+            "duration": views.fmt_duration(length.total_seconds()) + (" so far" if a.condition == "active" else ""),
+            "peak_at": views.fmt_time(a.peak_at) + " UTC",
+            "levels": levels,
+            "on_delay": f"{th.on_k} of {th.on_n}" if th else "enough",
+            "model": f"{a.model_id} / {a.model_version}",
+            "outcome": a.outcome,
+            "outcome_label": views.OUTCOME_LABELS.get(a.outcome or "", a.outcome),
+            "close_note": a.close_note,
+            "closed": views.fmt_time(a.closed_at),
+            "closed_by": a.closed_by,
+            "acknowledged": views.fmt_time(a.acknowledged_at),
+            "acknowledged_by": a.acknowledged_by,
+        },
+        "history": history,
     }
 
 
@@ -116,45 +239,36 @@ def alert_detail(db: Session, registry: ModelRegistry, *, alert_id: int, user: W
         t_range=t_range,
         title=f"Raw readings of {', '.join(top) or 'the top channels'} on {a.asset_id}",
     )
-    history = [
-        {
-            "at": views.fmt_time(e.at),
-            "actor": e.actor,
-            "kind": e.kind,
-            "label": views.EVENT_LABELS.get(e.kind, e.kind)
-            + (f" as {views.OUTCOME_LABELS.get((e.details or {}).get('outcome', ''), '')}" if e.kind == "closed" else "")
-            + (" (with the close)" if e.kind == "acknowledged" and (e.details or {}).get("implicit") else ""),
-            "note": e.note,
-        }
-        for e in detail.events
-    ]
-    levels = f"warning {views.fmt_score(warning)}, critical {views.fmt_score(critical)}" + (f" (v{th.version})" if th else "")
     return {
         "page_title": f"Alert #{a.id}",
         "section": "alerts",
-        "a": {
-            **alert_row(a),
-            "returned": views.fmt_time(a.returned_at),
-            "duration": views.fmt_duration(length.total_seconds()) + (" so far" if a.condition == "active" else ""),
-            "peak_at": views.fmt_time(a.peak_at) + " UTC",
-            "levels": levels,
-            "on_delay": f"{th.on_k} of {th.on_n}" if th else "enough",
-            "model": f"{a.model_id} / {a.model_version}",
-            "outcome": a.outcome,
-            "outcome_label": views.OUTCOME_LABELS.get(a.outcome or "", a.outcome),
-            "close_note": a.close_note,
-            "closed": views.fmt_time(a.closed_at),
-            "closed_by": a.closed_by,
-            "acknowledged": views.fmt_time(a.acknowledged_at),
-            "acknowledged_by": a.acknowledged_by,
-        },
+        **alert_live(detail, model),
         "score_svg": score_svg,
         "bars_svg": bars_svg,
         "readings_svg": readings_svg,
-        "history": history,
         "outcomes": list(views.OUTCOME_LABELS.items()),
         "can_tune": user.can("operator"),
         "back_href": "/alerts?" + urlencode({"asset": a.asset_id}),
+    }
+
+
+def month_note(per_month: float) -> str:
+    short = views.fmt_rate_short(per_month)
+    return f"under {short[2:]} a month" if short.startswith("<") else f"about {short} a month"
+
+
+def risk_view(risk: RetuneRisk, past: list[Any]) -> dict[str, Any]:
+    """What the preview shows about a proposal's risks, and what Apply must then confirm."""
+    opened = {p.alert_id: views.fmt_ms(p.start_ms) for p in past}
+    return {
+        "statements": risk.statements(),
+        "change_note": risk.change_note(),
+        "needs_confirmation": bool(risk.needs_confirmation),
+        "missed": [{"id": i, "opened": opened.get(i, "–")} for i in risk.missed_ids],
+        "short_history": risk.short_history,
+        "history": fmt_days(risk.history_days),
+        "min_history": fmt_days(MIN_HISTORY_DAYS),
+        "min_reason": MIN_RISKY_REASON if risk.needs_confirmation else 3,
     }
 
 
@@ -241,7 +355,12 @@ def threshold_page(
     if inputs is not None:
         try:
             rule, budget, _origin = proposed_rule(current_rule, inputs, cal)
-            result = preview(series, rule, current_rule, past, cal)
+            risk = None
+            if model is not None:  # the check Apply runs (service/api/thresholds.py), on the same stretch
+                done = preview_change(db, asset=asset, model=model, current=current_rule, proposed=rule, since=since, until=until)
+                result, risk = done.result, done.risk
+            else:
+                result = preview(series, rule, current_rule, past, cal)
             lanes.append(
                 charts.Lane(
                     "would open",
@@ -266,7 +385,7 @@ def threshold_page(
                 "overlap_false": result.overlap_false_alarm,
                 "expected": views.fmt_rate_short(result.expected_false_alarms_per_week),
                 "expected_note": (
-                    f"about {views.fmt_score(result.expected_false_alarms_per_week * 30.44 / 7)} a month "
+                    f"{month_note(result.expected_false_alarms_per_week * 30.44 / 7)} "
                     if result.expected_false_alarms_per_week
                     else ""
                 ),
@@ -274,9 +393,10 @@ def threshold_page(
                 "missed_confirmed": (
                     f"{confirmed_total - result.overlap_confirmed_fault} of the {confirmed_total} confirmed faults in this stretch "
                     "would have raised no alert at these levels."
-                    if result.overlap_confirmed_fault < confirmed_total
+                    if risk is None and result.overlap_confirmed_fault < confirmed_total
                     else ""
                 ),
+                "risk": risk_view(risk, past) if risk is not None else None,
             }
         except views.FormValueError as e:
             form_error = str(e)
@@ -343,4 +463,60 @@ def threshold_page(
             for v in versions
         ],
         "shelved": shelved,
+    }
+
+
+VERDICT_LABELS = {"within_target": "within target", "above_target": "above target", "beyond_limit": "beyond limit", "no_data": "no data"}
+
+
+def _figure_number(v: float | None, unit: str) -> str:
+    """A figure's number; fractions as percentages."""
+    if v is None:
+        return "–"
+    if unit.startswith("fraction"):
+        return f"{views.fmt_score(v * 100)} %"
+    return views.fmt_score(v)
+
+
+def alert_health_page(db: Session, registry: ModelRegistry) -> dict[str, Any]:
+    """The alert-health figures of GET /v1/alert-health, for people."""
+    from service.api.alerts import health_report
+
+    h = health_report(db, registry, since=None, until=None)
+    return {
+        "page_title": "Alert health",
+        "section": "health",
+        "h": h,
+        "span": f"from {views.fmt_time(h.since)} to {views.fmt_time(h.until)}",
+        "asset_days": views.fmt_score(h.asset_days),
+        "horizon": views.fmt_duration(h.chatter_horizon_s),
+        "figures": [
+            {
+                "name": f.name,
+                "label": f.name.replace("_", " "),
+                "unit": f.unit,
+                "value": _figure_number(f.value, f.unit),
+                "target": _figure_number(f.target, f.unit),
+                "limit": _figure_number(f.limit, f.unit),
+                "verdict": f.verdict,
+                "verdict_label": VERDICT_LABELS.get(f.verdict, f.verdict),
+                "basis": f.basis,
+            }
+            for f in h.figures
+        ],
+    }
+
+
+def notify_page(db: Session) -> dict[str, Any]:
+    """Routes and the newest outbox messages, for admins."""
+    from service.db import outbox
+
+    return {
+        "page_title": "Notifications",
+        "section": "notify",
+        "routes": outbox.list_routes(db),
+        "outbox": [
+            {"kind": m.kind, "key": m.idempotency_key, "status": m.status, "attempts": m.attempts, "last_error": m.last_error}
+            for m in outbox.list_outbox(db, limit=20)
+        ],
     }

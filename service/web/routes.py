@@ -21,7 +21,7 @@ from typing import Annotated, Any
 from urllib.parse import urlencode
 
 from fastapi import APIRouter, Form, Query, Request
-from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from jinja2 import Environment, FileSystemLoader, select_autoescape
 from pydantic import ValidationError
 from sqlalchemy.orm import Session
@@ -63,6 +63,7 @@ DONE_MESSAGES = {
     "shelved": "Asset shelved: no new alerts open until the time shown.",
     "unshelved": "Asset unshelved: alerts open again as the rule decides.",
     "signed_out": "You are signed out.",
+    "test_queued": "Test message queued: the service sends it within a few seconds.",
 }
 
 
@@ -282,59 +283,73 @@ def alerts_page(
     since: Annotated[str | None, Query(max_length=40)] = None,
     until: Annotated[str | None, Query(max_length=40)] = None,
     cursor: Annotated[str | None, Query(max_length=200)] = None,
+    sort: Annotated[str | None, Query(max_length=16)] = None,
 ) -> Response:
     user, refused = _guard(request)
     if refused is not None or user is None:
         return refused  # type: ignore[return-value]
     filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
-    flashes: list[tuple[str, str]] = []
-    rows: list[Any] = []
-    next_cursor = None
+    with _read_session(request) as db:
+        context = pages.alert_list(db, user=user, filters=filters, cursor=cursor, page_size=PAGE_SIZE, sort=sort or "priority")
+    context.update(_live(request), live_src="/alerts/live" + (f"?{request.url.query}" if request.url.query else ""))
+    return _render(request, "alerts.html", context, user=user)
+
+
+def _live(request: Request) -> dict[str, Any]:
+    every = request.app.state.settings.dashboard_refresh_s
+    return {"live_every_s": f"{every:g}", "updated": datetime.now(timezone.utc).strftime("%H:%M")}
+
+
+def _live_parts(request: Request, parts: dict[str, str], context: dict[str, Any], user: WebUser) -> JSONResponse:
+    """The live refresh's answer: each page part rendered by the template the page includes."""
+    html = {
+        element: _env.get_template(template).render(request=request, user=user, csrf_token=user.csrf_token, static=_static_url, **context)
+        for element, template in parts.items()
+    }
+    response = JSONResponse({"parts": html, "updated": _live(request)["updated"], "state": context.get("a", {}).get("state")})
+    response.headers["Cache-Control"] = "no-store"
+    return response
+
+
+def _live_refused(user: WebUser | None) -> JSONResponse:
+    message = "signed out: reload the page and sign in" if user is None else "not available with your key"
+    return JSONResponse({"error": message}, status_code=401 if user is None else 403)
+
+
+@router.get("/alerts/live")
+def alerts_live(
+    request: Request,
+    asset: Annotated[str | None, Query(max_length=64)] = None,
+    state: Annotated[str | None, Query(max_length=32)] = None,
+    severity: Annotated[str | None, Query(max_length=32)] = None,
+    since: Annotated[str | None, Query(max_length=40)] = None,
+    until: Annotated[str | None, Query(max_length=40)] = None,
+    cursor: Annotated[str | None, Query(max_length=200)] = None,
+    sort: Annotated[str | None, Query(max_length=16)] = None,
+) -> Response:
+    """The alert list's rows and counts, for the page to refresh itself without a reload."""
+    user = current_user(request)
+    if user is None or not user.can("maintenance"):
+        return _live_refused(user)
+    filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
+    with _read_session(request) as db:
+        context = pages.alert_list(db, user=user, filters=filters, cursor=cursor, page_size=PAGE_SIZE, sort=sort or "priority")
+    return _live_parts(request, {"live-tallies": "_alert_tallies.html", "live-table": "_alert_table.html"}, context, user)
+
+
+@router.get("/alerts/{alert_id}/live")
+def alert_live(request: Request, alert_id: int) -> Response:
+    """The alert page's facts and history, for the page to refresh itself."""
+    user = current_user(request)
+    if user is None or not user.can("maintenance"):
+        return _live_refused(user)
     with _read_session(request) as db:
         try:
-            since_dt = views.parse_utc_local(since, "Opened from")
-            until_dt = views.parse_utc_local(until, "Opened before")
-            rows, next_cursor = alert_q.list_alerts(
-                db,
-                asset_id=asset or None,
-                state=state or None,
-                severity=severity or None,
-                since=since_dt,
-                until=until_dt,
-                limit=PAGE_SIZE,
-                cursor=cursor or None,
-                allowed_assets=user.caller.assets,
-            )
-        except views.FormValueError as e:
-            flashes.append(("error", str(e)))
+            detail = alert_q.get_alert(db, alert_id=alert_id, allowed_assets=user.caller.assets)
         except KilterError as e:
-            flashes.append(("error", e.message))
-        scope = user.caller.assets
-        if asset:  # the tallies follow the asset filter
-            scope = frozenset({asset}) if scope is None else scope & {asset}
-        counts = alert_q.count_by_state(db, allowed_assets=scope)
-        ids = [a.asset_id for a in readings_q.list_assets(db, now=datetime.now(timezone.utc), silent_after_s={})]
-    kept = {k: v for k, v in filters.items() if v}
-    tally_hrefs = {s: "/alerts?" + urlencode({**{k: v for k, v in kept.items() if k != "state"}, "state": s}) for s in counts}
-    described = ", ".join(f"{k} {v}" for k, v in kept.items()) or "no filters"
-    return _render(
-        request,
-        "alerts.html",
-        {
-            "page_title": "Alerts",
-            "section": "alerts",
-            "rows": [pages.alert_row(a) for a in rows],
-            "counts": counts,
-            "tally_hrefs": tally_hrefs,
-            "filters": filters,
-            "asset_ids": ids,
-            "caption": f"{len(rows)} alert{'' if len(rows) == 1 else 's'} on this page ({described}); newest first.",
-            "next_href": "/alerts?" + urlencode({**kept, "cursor": next_cursor}) if next_cursor else None,
-            "first_href": "/alerts?" + urlencode(kept) if cursor else None,
-            "flashes": flashes,
-        },
-        user=user,
-    )
+            return JSONResponse({"error": e.message}, status_code=http_status(e))
+        context = pages.alert_live(detail, pages.loaded_model(request.app.state.registry, detail.alert.model_id))
+    return _live_parts(request, {"live-facts": "_alert_facts.html", "live-history": "_alert_history.html"}, context, user)
 
 
 @router.get("/alerts/{alert_id}", response_class=HTMLResponse)
@@ -347,6 +362,7 @@ def alert_page(request: Request, alert_id: int) -> Response:
             context = pages.alert_detail(db, request.app.state.registry, alert_id=alert_id, user=user)
         except KilterError as e:
             return _failed(request, user, e, "/alerts")
+    context.update(_live(request))
     return _render(request, "alert_detail.html", context, user=user)
 
 
@@ -513,6 +529,8 @@ def apply_threshold(
     critical: Annotated[str, Form(max_length=40)] = "",
     budget: Annotated[str, Form(max_length=40)] = "",
     reason: Annotated[str, Form(max_length=2000)] = "",
+    confirm_missed: Annotated[list[int] | None, Form()] = None,
+    confirm_short_history: Annotated[str, Form(max_length=8)] = "",
     csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None,
 ) -> Response:
     def propose(current_rule: AlertRule, model: LoadedModel) -> actions.RuleChange:
@@ -521,7 +539,11 @@ def apply_threshold(
         return actions.RuleChange(rule=rule, origin=origin, budget_per_week=budget_per_week, details={"via": "dashboard"})
 
     def act(db: Session, user: WebUser) -> None:
-        actions.change_threshold(db, request.app.state.registry, caller=user.caller, asset_id=asset_id, reason=_reason(reason), propose=propose)
+        # The API's check (service/actions.py): a risky change needs its risks named and a longer reason.
+        actions.change_threshold(
+            db, request.app.state.registry, caller=user.caller, asset_id=asset_id, reason=_reason(reason), propose=propose,
+            confirm=actions.Confirmation(missed=list(confirm_missed or []), short_history=bool(confirm_short_history)),
+        )
 
     return _asset_action(request, asset_id, csrf_token, "applied", act)
 
@@ -560,3 +582,41 @@ def unshelve_asset(request: Request, asset_id: str, csrf_token: Annotated[str | 
     return _asset_action(
         request, asset_id, csrf_token, "unshelved", lambda db, user: actions.unshelve_asset(db, caller=user.caller, asset_id=asset_id)
     )
+
+
+# --------------------------------------------------------------------------- alert health, notifications
+
+
+@router.get("/alert-health", response_class=HTMLResponse)
+def alert_health_page(request: Request) -> Response:
+    user, refused = _guard(request)
+    if refused is not None or user is None:
+        return refused  # type: ignore[return-value]
+    with _read_session(request) as db:
+        context = pages.alert_health_page(db, request.app.state.registry)
+    return _render(request, "alert_health.html", context, user=user)
+
+
+@router.get("/notify", response_class=HTMLResponse)
+def notify_page(request: Request) -> Response:
+    user, refused = _guard(request, role="admin")
+    if refused is not None or user is None:
+        return refused  # type: ignore[return-value]
+    with _read_session(request) as db:
+        context = pages.notify_page(db)
+    return _render(request, "notify.html", context, user=user)
+
+
+@router.post("/notify/routes/{route_id}/test", response_class=HTMLResponse)
+def notify_test(request: Request, route_id: int, csrf_token: Annotated[str | None, Form(alias=CSRF_FIELD)] = None) -> Response:
+    from service.db import outbox
+
+    user, refused = _guard(request, role="admin", csrf=csrf_token, posting=True)
+    if refused is not None or user is None:
+        return refused  # type: ignore[return-value]
+    try:
+        with _write(request) as db:
+            outbox.queue_test(db, route_id=route_id, actor=user.name)
+    except KilterError as e:
+        return _failed(request, user, e, "/notify")
+    return _after_post("/notify", "test_queued")

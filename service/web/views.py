@@ -68,23 +68,40 @@ def fmt_ago(t: datetime | None, now: datetime) -> str:
 
 
 def fmt_score(v: float | None) -> str:
-    return format_number(v) if v is not None else "–"
+    """A score or level for people: 3 significant digits, thousands grouped, never an exponent
+    ('0.0123', '528', '8,230', '1,230,000'); below 0.001, '< 0.001'."""
+    if v is None:
+        return "–"
+    if math.isfinite(v) and v != 0 and abs(v) < 1e-3:
+        return "< 0.001" if v > 0 else "> -0.001"
+    if math.isfinite(v) and abs(v) >= 1e4:
+        return f"{round(v, 2 - int(math.floor(math.log10(abs(v))))):,.0f}"  # 3 significant digits
+    return format_number(v)
+
+
+RATE_FLOOR = 0.01  # per week: smaller rates read as "< 0.01" (once in two years or rarer)
 
 
 def fmt_rate(per_week: float | None) -> str:
-    """False alarms per week, with a per-month reading for small rates."""
+    """False alarms per week, with a per-month reading for small rates; never an exponent."""
     if per_week is None:
         return "not known"
     if per_week == 0:
         return "0 a week"
+    if per_week < RATE_FLOOR:
+        return "< 0.01 a week (fewer than one in two years)"
     if per_week < 1:
-        return f"{format_number(per_week)} a week (about {format_number(per_week * 30.44 / 7)} a month)"
-    return f"{format_number(per_week)} a week"
+        return f"{fmt_score(per_week)} a week (about {fmt_score(per_week * 30.44 / 7)} a month)"
+    return f"{fmt_score(per_week)} a week"
 
 
 def fmt_rate_short(per_week: float | None) -> str:
-    """The bare figure for a big number on the page: '0.25', '0', 'n/a'."""
-    return format_number(per_week) if per_week is not None else "n/a"
+    """The bare figure for a big number on the page: '0.25', '0', '< 0.01', 'n/a'."""
+    if per_week is None:
+        return "n/a"
+    if 0 < per_week < RATE_FLOOR:
+        return "< 0.01"
+    return fmt_score(per_week)
 
 
 def parse_utc_local(value: str | None, field: str) -> datetime | None:

@@ -49,6 +49,7 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
         "KILTER_DATABASE_URL": f"sqlite:///{db_path}",
         "KILTER_MODEL_DIR": str(BUNDLED),
         "KILTER_RETENTION_DAYS": "0",
+        "KILTER_DASHBOARD_REFRESH_S": "2",  # the live list's poll, short for the tests
         "CI": "1",  # no progress bars
     }
     log_path = folder / "serve.log"

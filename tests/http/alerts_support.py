@@ -57,7 +57,7 @@ class Service:
 
 
 @contextmanager
-def running(tmp_path: Path, model_dir: Path | None = None) -> Iterator[Service]:
+def running(tmp_path: Path, model_dir: Path | None = None, **overrides: object) -> Iterator[Service]:
     """The app on an SQLite file in `tmp_path` (or, when KILTER_TEST_DATABASE_URL is set as
     for the rest of tests/http, a fresh PostgreSQL schema), with one key per role."""
     test_db = os.environ.get("KILTER_TEST_DATABASE_URL")
@@ -68,6 +68,7 @@ def running(tmp_path: Path, model_dir: Path | None = None) -> Iterator[Service]:
         model_dir=model_dir or bundled_model_dir(),
         retention_days=0,
         auth_fail_limit=0,  # the failed-auth limit has its own tests
+        **overrides,  # type: ignore[arg-type]
     )
     app = create_app(settings)
     try:

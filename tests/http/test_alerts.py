@@ -1,4 +1,4 @@
-"""GET /v1/alerts (filters, newest first, keyset pagination), detail, acknowledge, close, notes."""
+"""GET /v1/alerts (filters, priority and newest-first order, keyset pagination), detail, acknowledge, close, notes."""
 
 from __future__ import annotations
 
@@ -31,7 +31,7 @@ def test_list_is_newest_first_and_filters(svc: Service):
     a2 = add_alert(svc, "pump-02", T0 + 3 * H, severity="critical")
     a3 = add_alert(svc, "pump-01", T0 + 5 * H)
     c = svc.client
-    assert ids(c.get("/v1/alerts", headers=svc.h("maintenance"))) == [a3, a2, a1]
+    assert ids(c.get("/v1/alerts", params={"sort": "newest"}, headers=svc.h("maintenance"))) == [a3, a2, a1]
     assert ids(c.get("/v1/alerts", params={"asset": "pump-01"}, headers=svc.h("maintenance"))) == [a3, a1]
     assert ids(c.get("/v1/alerts", params={"severity": "critical"}, headers=svc.h("maintenance"))) == [a2]
     assert ids(c.get("/v1/alerts", params={"condition": "returned"}, headers=svc.h("maintenance"))) == [a1]
@@ -52,6 +52,7 @@ BAD_FILTERS = [
     ({"condition": "cleared"}, "query.condition"),
     ({"limit": 0}, "query.limit"),
     ({"cursor": "not-a-cursor"}, "query.cursor"),
+    ({"sort": "oldest"}, "query.sort"),
     ({"since": "2026-10-13T05:00:00"}, "query.since"),  # no offset: ambiguous
     ({"since": "2026-10-13T05:00:00Z", "until": "2026-10-13T04:00:00Z"}, "query.until"),
 ]
@@ -80,16 +81,47 @@ def test_cursor_pages_stay_correct_while_alerts_arrive(svc: Service):
     assert seen == expected  # every original alert once, in order
     assert not set(newer + [same_instant]) & set(seen)
     # A fresh listing shows everything, newest first.
-    everything = ids(c.get("/v1/alerts", params={"limit": 200}, headers=svc.h("maintenance")))
+    everything = ids(c.get("/v1/alerts", params={"limit": 200, "sort": "newest"}, headers=svc.h("maintenance")))
     assert everything[:2] == [newer[1], newer[0]] and len(everything) == 10
     assert everything.index(same_instant) < everything.index(first[4])
 
 
+def test_default_order_puts_what_needs_someone_first(svc: Service):
+    """Active before returned, unacknowledged before acknowledged, critical before warning,
+    newest first within each; closed last. Pages follow the same order through the cursor."""
+    c, h = svc.client, svc.h("maintenance")
+    returned_crit = add_alert(svc, "pump-01", T0 + 1 * H, returned_at=T0 + 2 * H, severity="critical", peak=9.0)
+    closed = add_alert(svc, "pump-01", T0 + 6 * H, returned_at=T0 + 7 * H, severity="critical")
+    returned_warn = add_alert(svc, "pump-02", T0 + 2 * H, returned_at=T0 + 2.5 * H)
+    acked_returned = add_alert(svc, "pump-02", T0 + 8 * H, returned_at=T0 + 9 * H)
+    active_crit = add_alert(svc, "pump-01", T0 + 10 * H, severity="critical", peak=12.0)
+    active_warn = add_alert(svc, "pump-02", T0 + 11 * H)
+    assert c.post(f"/v1/alerts/{acked_returned}/acknowledge", headers=h).status_code == 200
+    assert c.post(f"/v1/alerts/{closed}/close", json={"outcome": "false_alarm"}, headers=h).status_code == 200
+    want = [active_crit, active_warn, returned_crit, returned_warn, acked_returned, closed]
+    assert ids(c.get("/v1/alerts", headers=h)) == want
+    walked, page = [], c.get("/v1/alerts", params={"limit": 4}, headers=h).json()
+    walked += [a["id"] for a in page["items"]]
+    page = c.get("/v1/alerts", params={"limit": 4, "cursor": page["next_cursor"]}, headers=h).json()
+    walked += [a["id"] for a in page["items"]]
+    assert walked == want and page["next_cursor"] is None
+    # A newest-first cursor is refused in priority order (and the other way round).
+    newest = c.get("/v1/alerts", params={"limit": 2, "sort": "newest"}, headers=h).json()["next_cursor"]
+    r = c.get("/v1/alerts", params={"cursor": newest}, headers=h)
+    assert r.status_code == 422 and r.json()["error"]["field"] == "query.cursor"
+    # The peak as a multiple of the warning level in force when it opened.
+    top = c.get("/v1/alerts", headers=h).json()["items"][0]
+    assert top["condition"] == "active" and top["warning_level"] > 0
+    assert top["peak_ratio"] == pytest.approx(12.0 / top["warning_level"])
+
+
 def test_backfilled_older_alert_appears_on_a_later_page(svc: Service):
     ids_ = [add_alert(svc, "pump-01", T0 + i * H, returned_at=T0 + i * H + timedelta(minutes=5)) for i in range(2, 6)]
-    page = svc.client.get("/v1/alerts", params={"limit": 2}, headers=svc.h("maintenance")).json()
+    page = svc.client.get("/v1/alerts", params={"limit": 2, "sort": "newest"}, headers=svc.h("maintenance")).json()
     older = add_alert(svc, "pump-02", T0)  # opened before everything listed so far
-    rest = svc.client.get("/v1/alerts", params={"limit": 10, "cursor": page["next_cursor"]}, headers=svc.h("maintenance")).json()
+    rest = svc.client.get(
+        "/v1/alerts", params={"limit": 10, "cursor": page["next_cursor"], "sort": "newest"}, headers=svc.h("maintenance")
+    ).json()
     assert [a["id"] for a in page["items"]] + [a["id"] for a in rest["items"]] == [ids_[3], ids_[2], ids_[1], ids_[0], older]
     assert rest["next_cursor"] is None
 

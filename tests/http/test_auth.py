@@ -18,7 +18,7 @@ PUBLIC = {
     ("GET", "/openapi.json"), ("GET", "/docs"), ("GET", "/docs/assets/kilter-docs.js"), ("GET", "/docs/assets/{name}"),
     ("GET", "/"), ("GET", "/signin"), ("POST", "/signin"),
 }
-SAMPLE = {"asset_id": "pump-01", "alert_id": "1"}
+SAMPLE = {"asset_id": "pump-01", "alert_id": "1", "route_id": "1", "message_id": "1"}
 
 
 def registered_routes(app) -> list[tuple[str, str]]:

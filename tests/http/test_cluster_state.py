@@ -72,7 +72,7 @@ def test_an_operators_threshold_survives_batches_on_every_worker(pair: tuple[Env
     assert a.post("pump-01", readings(range(0, 8))).status_code == 200
     tiny_model.build(tiny_dir, model_id=MODEL, version="2", warning=5.5)
     assert a.client.post("/v1/models/reload", headers=a.auth("admin")).status_code == 200
-    put = b.client.put("/v1/assets/pump-01/threshold", json={"warning": 7.0, "reason": "site trial"}, headers=b.auth("operator"))
+    put = b.client.put("/v1/assets/pump-01/threshold", json={"warning": 7.0, "reason": "site trial of a higher level", "confirm_short_history": True}, headers=b.auth("operator"))
     assert put.status_code == 200, put.text
     for i, env in enumerate((a, b, a, b)):
         r = env.post("pump-01", readings(range(8 + 2 * i, 10 + 2 * i)))

@@ -110,11 +110,14 @@ def test_demo_day_alert_is_worked_and_retuned(svc: Service, day):
     higher = c.post(f"/v1/assets/{FAULTY}/threshold/preview", json={"warning": 2 * alert["peak_score"]}, headers=svc.h("operator")).json()
     assert higher["would_open_count"] == 0 < now["would_open_count"]
     assert higher["current_count"] == now["would_open_count"]
+    assert higher["risk"]["missed_confirmed_faults"] == [alert["id"]] and higher["risk"]["big_change"]
 
     new_warning = round(min(threshold["warning"] * 3, alert["peak_score"] / 2), 6)
     applied = c.put(
         f"/v1/assets/{FAULTY}/threshold",
-        json={"warning": new_warning, "reason": "catch cavitation like today's, with fewer alerts from normal wobble"},
+        # One demo day is less than the week a change should rest on: accepted by name (service/retune_risk.py).
+        json={"warning": new_warning, "reason": "catch cavitation like today's, with fewer alerts from normal wobble",
+              "confirm_short_history": True},
         headers=svc.h("operator"),
     )
     assert applied.status_code == 200, applied.text

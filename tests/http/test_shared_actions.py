@@ -59,7 +59,7 @@ def test_a_dashboard_threshold_change_waits_for_the_assets_row_lock(env: Env) ->
     got: dict[str, Any] = {}
 
     def dashboard() -> None:
-        got["r"] = env.client.post("/assets/pump-01/thresholds", data={"warning": "5", "reason": "quieter after overhaul", "csrf_token": token},
+        got["r"] = env.client.post("/assets/pump-01/thresholds", data={"warning": "5", "reason": "quieter after overhaul", "confirm_short_history": "1", "csrf_token": token},
                                    follow_redirects=False)
         done.set()
 

@@ -84,7 +84,7 @@ def _post(svc: Service, times: np.ndarray, values: np.ndarray, channels) -> dict
 
 def test_a_shelved_asset_stores_scores_but_opens_no_alert(svc: Service):
     # A level every window exceeds, so only shelving can keep an alert from opening.
-    r = svc.client.put(f"/v1/assets/{A}/threshold", json={"warning": 1e-9, "reason": "make every window alert"}, headers=svc.h("operator"))
+    r = svc.client.put(f"/v1/assets/{A}/threshold", json={"warning": 1e-9, "reason": "make every window alert", "confirm_short_history": True}, headers=svc.h("operator"))
     assert r.status_code == 200
     svc.client.post(f"/v1/assets/{A}/shelve", json={"until": future(hours=2), "reason": "commissioning"}, headers=svc.h("operator"))
     day = demo_day(assets=1)

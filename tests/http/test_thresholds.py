@@ -14,6 +14,8 @@ from service.db.models import AuditLog
 from service.manifest import load_calibration
 from service.thresholds import CalibrationSet, threshold_for_budget
 
+# No stored history before these changes: each accepts the short preview explicitly (service/retune_risk.py).
+SHORT = {"confirm_short_history": True}
 A = "pump-03"
 
 
@@ -149,12 +151,12 @@ def test_put_versions_history_rollback_and_audit(svc: Service):
     nothing = c.put(f"/v1/assets/{A}/threshold", json={"reason": "just because"}, headers=ho)
     assert nothing.status_code == 422 and "nothing to change" in nothing.json()["error"]["message"]
 
-    v2 = c.put(f"/v1/assets/{A}/threshold", json={"warning": 2 * w, "critical": 5 * w, "reason": "too many false alarms at night"}, headers=ho)
+    v2 = c.put(f"/v1/assets/{A}/threshold", json={"warning": 2 * w, "critical": 5 * w, "reason": "too many false alarms at night", **SHORT}, headers=ho)
     assert v2.status_code == 200, v2.text
     assert (v2.json()["version"], v2.json()["origin"], v2.json()["created_by"]) == (2, "manual", "operator-tester")
-    v3 = c.put(f"/v1/assets/{A}/threshold", json={"on_k": 1, "on_n": 1, "off_m": 2, "reason": "react faster"}, headers=ho).json()
+    v3 = c.put(f"/v1/assets/{A}/threshold", json={"on_k": 1, "on_n": 1, "off_m": 2, "reason": "react faster to a rising trend", **SHORT}, headers=ho).json()
     assert (v3["version"], v3["warning"], v3["critical"], v3["on_k"], v3["off_m"]) == (3, 2 * w, 5 * w, 1, 2)
-    v4 = c.put(f"/v1/assets/{A}/threshold", json={"false_alarms_per_week": 1.0, "reason": "one a week is fine"}, headers=ho).json()
+    v4 = c.put(f"/v1/assets/{A}/threshold", json={"false_alarms_per_week": 1.0, "reason": "one a week is fine", **SHORT}, headers=ho).json()
     assert (v4["version"], v4["origin"], v4["budget_per_week"], v4["on_k"]) == (4, "budget", 1.0, 1)
     back = c.put(f"/v1/assets/{A}/threshold", json={"rollback_to": 2, "reason": "budget level was too low"}, headers=ho).json()
     assert (back["version"], back["origin"], back["warning"], back["critical"], back["on_k"]) == (
@@ -181,7 +183,7 @@ def test_put_versions_history_rollback_and_audit(svc: Service):
 
 def test_threshold_roles(svc: Service):
     c = svc.client
-    body = {"warning": 1.0, "reason": "testing roles"}
+    body = {"warning": 1.0, "reason": "testing roles end to end", **SHORT}
     assert c.get(f"/v1/assets/{A}/threshold").status_code == 401
     assert c.get(f"/v1/assets/{A}/threshold", headers=svc.h("machine")).status_code == 403
     assert c.get(f"/v1/assets/{A}/threshold/history", headers=svc.h("maintenance")).status_code == 200
@@ -198,7 +200,7 @@ def test_parallel_changes_get_consecutive_versions(svc: Service):
     w = svc.manifest().thresholds.warning
 
     def put(i: int) -> tuple[int, int]:
-        r = svc.client.put(f"/v1/assets/{A}/threshold", json={"warning": (2 + i) * w, "reason": f"parallel change {i}"}, headers=svc.h("operator"))
+        r = svc.client.put(f"/v1/assets/{A}/threshold", json={"warning": (2 + i) * w, "reason": f"parallel change number {i}", **SHORT}, headers=svc.h("operator"))
         return r.status_code, r.json().get("version", 0)
 
     with ThreadPoolExecutor(max_workers=4) as pool:
@@ -207,3 +209,52 @@ def test_parallel_changes_get_consecutive_versions(svc: Service):
     assert sorted(v for _, v in results) == [2, 3, 4, 5]
     hist = svc.client.get(f"/v1/assets/{A}/threshold/history", headers=svc.h("maintenance")).json()["items"]
     assert [v["version"] for v in hist] == [5, 4, 3, 2, 1]
+
+
+def test_a_change_that_misses_a_confirmed_fault_or_rests_on_little_history_needs_a_named_confirmation(svc: Service):
+    """service/retune_risk.py: missing a confirmed fault or a preview under 7 asset-days needs a
+    confirmation naming each risk and a reason of 15+ characters; the audit log flags it."""
+    man = svc.manifest()
+    w = man.thresholds.warning
+    c, ho = svc.client, svc.h("operator")
+    scores, spans = burst_scores(w, man.alert_rule.on_n, man.alert_rule.off_m)
+    ends = add_scores(svc, A, scores)
+    cf = add_alert(svc, A, ends[spans[1][0]], returned_at=ends[spans[1][1] + 2])  # the 3 w burst
+    c.post(f"/v1/alerts/{cf}/close", json={"outcome": "confirmed_fault"}, headers=svc.h("maintenance"))
+
+    risk = c.post(f"/v1/assets/{A}/threshold/preview", json={"warning": 4 * w}, headers=ho).json()["risk"]
+    assert risk["needs_confirmation"] == ["missed_confirmed_faults", "short_history"]
+    assert risk["missed_confirmed_faults"] == [cf] and risk["big_change"] and risk["warning_factor"] == pytest.approx(4.0)
+    assert risk["history_days"] == pytest.approx(len(scores) * man.window_period_s / 86400)
+    assert any(f"#{cf}" in s for s in risk["statements"]) and any("4.0x the level in force" in s for s in risk["statements"])
+
+    body = {"warning": 4 * w, "reason": "fewer alerts from this pump at night please"}
+    for extra, field in [
+        ({}, "body.confirm_missed"),
+        ({"confirm_missed": [cf + 100]}, "body.confirm_missed"),  # naming another alert is no confirmation
+        ({"confirm_missed": [cf]}, "body.confirm_short_history"),
+        ({"confirm_missed": [cf], "confirm_short_history": True, "reason": "night alerts"}, "body.reason"),  # 12 characters
+    ]:
+        r = c.put(f"/v1/assets/{A}/threshold", json={**body, **extra}, headers=ho)
+        assert r.status_code == 422 and r.json()["error"]["field"] == field, (extra, r.text)
+        assert r.json()["error"]["details"]["missed_confirmed_faults"] == [cf]
+    assert c.get(f"/v1/assets/{A}/threshold", headers=ho).json()["version"] == 1  # nothing applied
+    ok = c.put(f"/v1/assets/{A}/threshold", json={**body, "confirm_missed": [cf], "confirm_short_history": True}, headers=ho)
+    assert ok.status_code == 200, ok.text
+    with svc.db.session() as s:
+        audit = s.scalars(select(AuditLog).where(AuditLog.action == "threshold.set").order_by(AuditLog.id.desc())).first()
+    assert audit.details["flagged"] is True and audit.details["accepted_risks"] == ["missed_confirmed_faults", "short_history"]
+    assert audit.details["missed_confirmed_faults"] == [cf]
+
+    # A week and more of stored windows and a level that still meets the fault: one click.
+    b = "pump-04"
+    add_asset(svc, b)
+    week = int(7.5 * 86400 / man.window_period_s)
+    long_ends = add_scores(svc, b, [0.2 * w] * week + scores)
+    cf_b = add_alert(svc, b, long_ends[week + spans[1][0]], returned_at=long_ends[week + spans[1][1] + 2])
+    c.post(f"/v1/alerts/{cf_b}/close", json={"outcome": "confirmed_fault"}, headers=svc.h("maintenance"))
+    plain = c.put(f"/v1/assets/{b}/threshold", json={"warning": 1.3 * w, "reason": "a bit higher"}, headers=ho)
+    assert plain.status_code == 200, plain.text
+    with svc.db.session() as s:
+        audit = s.scalars(select(AuditLog).where(AuditLog.target == f"asset:{b}", AuditLog.action == "threshold.set")).first()
+    assert audit.details["flagged"] is False and audit.details["accepted_risks"] == []

@@ -119,8 +119,23 @@ def test_threshold_editor_is_for_operators_only(env: Env) -> None:
     sign_in(env, "operator")
     page = env.client.get("/assets/pump-01/thresholds?by=level&warning=5")
     assert page.status_code == 200 and 'data-figure="would-open"' in page.text
+    # Under an hour of stored scores: Apply asks to accept the short history by name, with a real reason.
+    assert 'name="confirm_short_history"' in page.text and 'minlength="15"' in page.text and "Apply anyway as v2" in page.text
+    assert "Advisory only: a threshold decides who is told" in page.text
     r = env.client.post(
         "/assets/pump-01/thresholds", data={"warning": "5", "reason": "quieter", "csrf_token": csrf(env)}, follow_redirects=False
+    )
+    assert r.status_code == 422 and "less than the 7.0 asset-days" in r.text
+    r = env.client.post(
+        "/assets/pump-01/thresholds", data={"warning": "5", "reason": "quieter", "confirm_short_history": "1", "csrf_token": csrf(env)},
+        follow_redirects=False,
+    )
+    assert r.status_code == 422 and "at least 15 characters" in r.text
+    assert env.count("threshold_versions", "asset_id = 'pump-01'") == 1
+    r = env.client.post(
+        "/assets/pump-01/thresholds",
+        data={"warning": "5", "reason": "quieter at night, agreed with the shift", "confirm_short_history": "1", "csrf_token": csrf(env)},
+        follow_redirects=False,
     )
     assert r.status_code == 303
     assert env.rows("SELECT version, warning, origin, created_by FROM threshold_versions WHERE asset_id = 'pump-01' ORDER BY version DESC")[0] == (
@@ -191,7 +206,16 @@ def test_alert_list_filters_and_reports_bad_dates(env: Env) -> None:
     page = env.client.get("/alerts?asset=pump-02")
     assert re.findall(r'<tr data-alert-id="(\d+)"', page.text) == [str(env.rows("SELECT id FROM alerts WHERE asset_id = 'pump-02'")[0][0])]
     assert 'data-state="unacknowledged">1<' in page.text  # the counts follow the asset filter
-    assert 'data-state="unacknowledged">2<' in env.client.get("/alerts").text
+    whole = env.client.get("/alerts").text
+    assert 'data-state="unacknowledged">2<' in whole
+    # Plain counts inside the filter form, each a link that filters by its state.
+    tallies = re.search(r'<p class="tallies".*?</p>', whole, re.S).group(0)
+    start = whole.index('<form class="filters')
+    assert start < whole.index('<p class="tallies"') < whole.index("</form>", start)
+    assert re.findall(r'href="/alerts\?state=(\w+)"', tallies) == ["unacknowledged", "acknowledged", "closed"]
+    assert "2</span> need acknowledging" in tallies and "0</span> closed" in tallies and "statebar" not in whole
+    # The condition beside the state, the peak as a multiple of the warning level (10.7 / 4).
+    assert whole.count('<td class="hide-phone"><span class="cond cond-returned">returned</span></td>') == 2 and "2.67x warning</span>" in whole  # condition column, peak as a multiple of warning
     page = env.client.get("/alerts?since=yesterday")
     assert page.status_code == 200 and "Opened from" in page.text and "not a date and time" in page.text
 
@@ -222,3 +246,50 @@ def test_alert_list_pages_newest_first_without_repeats(env: Env) -> None:
     page2 = [int(i) for i in re.findall(r'<tr data-alert-id="(\d+)"', second.text)]
     assert page1 + page2 == ids_in_db and len(page1) == 25
     assert 'rel="next"' not in second.text and "« Newest" in second.text
+
+
+def test_live_refresh_answers_the_pages_changing_parts(env: Env) -> None:
+    first = open_alert(env, "pump-01")
+    assert env.client.get("/alerts/live").status_code == 401  # no session: the page says so and stops
+    sign_in(env, "maintenance")
+    page = env.client.get("/alerts")
+    assert 'data-live-src="/alerts/live"' in page.text and 'id="live-updated"' in page.text
+    live = env.client.get("/alerts/live").json()
+    assert re.findall(r'<tr data-alert-id="(\d+)"', live["parts"]["live-table"]) == [str(first)]
+    assert re.fullmatch(r"\d\d:\d\d", live["updated"])
+    second = open_alert(env, "pump-02")  # arrives while the page is open
+    live = env.client.get("/alerts/live?asset=pump-02").json()
+    assert re.findall(r'<tr data-alert-id="(\d+)"', live["parts"]["live-table"]) == [str(second)]
+    assert 'data-state="unacknowledged">1<' in live["parts"]["live-tallies"]
+    one = env.client.get(f"/alerts/{first}/live").json()
+    assert one["state"] == "unacknowledged" and 'data-kind="opened"' in one["parts"]["live-history"]
+    r = env.client.post(f"/alerts/{first}/acknowledge", data={"csrf_token": csrf(env, f"/alerts/{first}")}, follow_redirects=False)
+    assert r.status_code == 303
+    one = env.client.get(f"/alerts/{first}/live").json()
+    assert one["state"] == "acknowledged" and 'data-kind="acknowledged"' in one["parts"]["live-history"]
+    assert env.client.get("/alerts/99999/live").status_code == 404
+
+
+def test_alert_health_and_notification_pages(env: Env) -> None:
+    open_alert(env, "pump-01")
+    sign_in(env, "maintenance")
+    page = env.client.get("/alert-health")
+    assert page.status_code == 200 and 'id="health-table"' in page.text
+    api = env.client.get("/v1/alert-health", headers={"Authorization": f"Bearer {env.keys['maintenance']}"}).json()
+    assert re.findall(r'<tr data-figure="(\w+)"', page.text) == [f["name"] for f in api["figures"]]
+    assert "alerts per asset-day" in page.text and "not a safety system" in page.text
+    assert env.client.get("/notify", follow_redirects=False).status_code == 403  # admins only
+    sign_in(env, "admin")
+    from service.db import outbox
+
+    with env.client.app.state.db.transaction() as s:
+        route, _ = outbox.add_route(s, name="desk-hook", channel="webhook", target="http://127.0.0.1:9/hook", actor="t")
+        route_id = route.id
+    page = env.client.get("/notify")
+    assert "desk-hook" in page.text and "Send test" in page.text
+    r = env.client.post(f"/notify/routes/{route_id}/test", data={"csrf_token": csrf(env, "/notify")}, follow_redirects=False)
+    assert r.status_code == 303 and "done=test_queued" in r.headers["location"]
+    # Queued (the running sender may already be trying the unreachable port: never sent).
+    assert [(k, st in ("pending", "sending")) for k, st in env.rows("SELECT kind, status FROM notify_outbox")] == [("test", True)]
+    r = env.client.post(f"/notify/routes/{route_id}/test", data={"csrf_token": "forged"}, follow_redirects=False)
+    assert r.status_code == 403 and env.count("notify_outbox", "1 = 1") == 1

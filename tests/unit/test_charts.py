@@ -59,12 +59,14 @@ def test_missing_windows_break_the_score_line() -> None:
     assert [len(r) for r in runs] == [5, 5]
 
 
-def test_large_peak_switches_to_log_axis_so_levels_stay_apart() -> None:
-    scores = [0.4, 0.5, 0.6, 400.0, 0.5]
+def test_every_score_chart_uses_one_log_scale_so_levels_stay_apart() -> None:
+    """One scale rule (service/web/charts.py): log whatever the peak, so two alerts' charts
+    never switch between log and linear, and the levels stay apart under a large peak."""
     t = [T0 + i * STEP for i in range(5)]
-    markup = charts.score_chart(t_ms=t, scores=scores, warning=1.0, critical=2.0)
-    root = parse(markup)
-    assert "log scale" in str(markup)
+    big = charts.score_chart(t_ms=t, scores=[0.4, 0.5, 0.6, 400.0, 0.5], warning=1.0, critical=2.0)
+    small = charts.score_chart(t_ms=t, scores=[0.4, 0.5, 1.6, 1.8, 0.5], warning=1.0, critical=2.0)
+    assert "score (log scale)" in str(big) and "score (log scale)" in str(small)
+    root = parse(big)
     gap_px = level_y(root, "level-warning") - level_y(root, "level-critical")
     # On a linear axis up to 400 the two levels would be under 1 px apart.
     assert gap_px > 10
@@ -159,7 +161,8 @@ def test_time_ticks_sit_on_round_utc_times() -> None:
 
 
 @pytest.mark.parametrize(
-    "value,text", [(0, "0"), (1.0, "1"), (0.123456, "0.123"), (12.345, "12.3"), (2500.0, "2500"), (1.5e-5, "1.50e-05"), (float("nan"), "–")]
+    "value,text", [(0, "0"), (1.0, "1"), (0.123456, "0.123"), (12.345, "12.3"), (2500.0, "2500"), (1.5e-5, "< 0.001"),
+     (2.5e6, "2.5 million"), (1.69e-42, "< 0.001"), (float("nan"), "–")]
 )
 def test_format_number(value: float, text: str) -> None:
     assert charts.format_number(value) == text

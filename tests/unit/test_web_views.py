@@ -53,6 +53,11 @@ def test_rates_read_per_week_and_per_month() -> None:
     assert views.fmt_rate(0.0) == "0 a week"
     assert views.fmt_rate(0.25) == "0.25 a week (about 1.09 a month)"  # 0.25 x 30.44 / 7
     assert views.fmt_rate(3.0) == "3 a week"
+    # No exponents for people: a rate from an extreme level, huge and tiny scores.
+    assert views.fmt_rate(1.69e-42) == "< 0.01 a week (fewer than one in two years)"
+    assert views.fmt_rate_short(1.69e-42) == "< 0.01" and views.fmt_rate_short(0.0) == "0"
+    assert views.fmt_score(8234.4) == "8234" and views.fmt_score(82344.0) == "82,300" and views.fmt_score(1.234e7) == "12,300,000" and views.fmt_score(528.0) == "528"
+    assert views.fmt_score(3e-9) == "< 0.001" and views.fmt_score(0.0123) == "0.0123"
 
 
 def test_shelving_is_limited_to_thirty_days() -> None:
