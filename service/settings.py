@@ -39,7 +39,12 @@ class Settings(BaseSettings):
     max_score_windows: int = Field(default=512, ge=1, description="windows per POST /v1/score; more is 413")
     future_tolerance_s: float = Field(default=300.0, ge=0, description="how far past the server clock a reading may lie")
     lateness_windows: int = Field(
-        default=36, ge=0, description="windows ending more than this many window periods before the newest reading are not scored"
+        default=36, ge=0,
+        description="a late reading can still complete an unscored window ending at most this many window periods before the newest reading",
+    )
+    hold_steps: int = Field(
+        default=0, ge=0,
+        description="grid steps a window waits past its end before it is formed: readings this far out of order still count (service/stream.py)",
     )
     silent_after_windows: float = Field(default=3.0, gt=0, description="asset is silent after this many window periods without a reading")
 

@@ -17,7 +17,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Path
 
-from service.alerting import AlertRule
+from service.alerting import AlertRule, manifest_rule, rule_of
 from service.api.deps import DbSession, MaintenanceCaller, OperatorCaller, RegistryDep, WriteSession
 from service.api.schemas_alerts import (
     BudgetOut,
@@ -60,7 +60,7 @@ def _in_force(db: DbSession, asset: Asset, model: LoadedModel) -> ThresholdVersi
     current = q.threshold_in_force(db, asset_id=asset.asset_id)
     if current is not None:
         return current
-    rule = q.manifest_rule(model.manifest)
+    rule = manifest_rule(model.manifest)
     return ThresholdVersion(
         asset_id=asset.asset_id,
         version=1,
@@ -132,7 +132,7 @@ def _would_open(alerts: list[ProposedAlert]) -> list[WouldOpenOut]:
 def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller: OperatorCaller, registry: RegistryDep) -> PreviewOut:
     asset = q.get_asset(db, asset_id=asset_id)
     model = _model(registry, asset)
-    current = q.rule_of(_in_force(db, asset, model))
+    current = rule_of(_in_force(db, asset, model))
     proposed = _propose(body, current, model)
     until = body.until
     if until is None:
@@ -194,7 +194,7 @@ def put_threshold(asset_id: AssetId, body: ThresholdPut, db: WriteSession, calle
                 "(on_k, on_n, off_m, deadband_frac) or rollback_to",
                 field="body",
             )
-        proposed = _propose(body, q.rule_of(current), model)
+        proposed = _propose(body, rule_of(current), model)
         by_budget = proposed.budget is not None
         row = q.set_threshold(
             db,

@@ -96,9 +96,9 @@ def create_asset(session: Session, *, asset_id: str, model_id: str) -> Asset:
 
 
 def latest_threshold(session: Session, *, asset_id: str) -> ThresholdVersion | None:
-    return session.scalars(
-        select(ThresholdVersion).where(ThresholdVersion.asset_id == asset_id).order_by(ThresholdVersion.version.desc()).limit(1)
-    ).first()
+    from service.db.thresholds import threshold_in_force  # the one query (that module imports this one's neighbours)
+
+    return threshold_in_force(session, asset_id=asset_id)
 
 
 def add_threshold_version(

@@ -26,6 +26,7 @@ from jinja2 import Environment, FileSystemLoader, select_autoescape
 from pydantic import ValidationError
 from sqlalchemy.orm import Session
 
+from service.alerting import rule_of
 from service.api.deps import PEOPLE_RANK
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
@@ -519,7 +520,7 @@ def apply_threshold(
     def act(db: Session, user: WebUser, asset: Any) -> None:
         why = _reason(reason)
         model = _asset_model(request, asset)
-        current_rule = threshold_q.rule_of(threshold_q.ensure_initial_version(db, asset=asset, manifest=model.manifest))
+        current_rule = rule_of(threshold_q.ensure_initial_version(db, asset=asset, manifest=model.manifest))
         inputs = pages.ThresholdInputs("budget" if budget.strip() else "level", warning, critical, budget)
         rule, budget_per_week, origin = pages.proposed_rule(current_rule, inputs, pages.calibration_of(model))
         threshold_q.set_threshold(
