@@ -149,10 +149,13 @@ def asset_scores(
     after = None
     if cursor:
         try:
-            after = int(_decode(cursor, "query.cursor"))
+            ms, row_id = _decode(cursor, "query.cursor").split(":")
+            after = (int(ms), int(row_id))
         except ValueError as e:
             raise BadInput("cursor is not one this service gave out; start again without it", field="query.cursor") from e
-    points = q.asset_scores(session, asset_id=asset_id, since=since, until=until, after_index=after, limit=limit + 1)
-    items = [ScorePointOut(**{k: v for k, v in as_dict(p).items() if k != "window_end_index"}) for p in points[:limit]]
-    nxt = _encode(str(points[limit - 1].window_end_index)) if len(points) > limit else None
+    points = q.asset_scores(session, asset_id=asset_id, since=since, until=until, after=after, limit=limit + 1)
+    items = [ScorePointOut(**{k: v for k, v in as_dict(p).items() if k not in ("window_end_index", "id")}) for p in points[:limit]]
+    # The cursor is the page's order key (window end, row id), so no row is skipped or repeated.
+    last = points[limit - 1] if len(points) > limit else None
+    nxt = _encode(f"{q.dt_to_ms(last.window_end)}:{last.id}") if last is not None else None
     return ScoresPage(asset_id=asset_id, since=since, until=until, items=items, next_cursor=nxt)

@@ -266,6 +266,32 @@ def test_scores_endpoint_range_contributions_and_pages(env) -> None:
     assert bad.status_code == 422 and bad.json()["error"]["field"] == "query.since"
 
 
+def test_scores_pages_skip_no_row_when_two_model_versions_scored_the_same_windows(env) -> None:
+    """The page order is (window end, row id) and so is the cursor: with a second model
+    version's scores of the same windows, paging with any page size returns every row once.
+    (The cursor used to hold the window-end index alone and dropped the second version's row
+    of the window a page ended on.)"""
+    env.post("pump-01", readings(range(20)))
+    env.execute(
+        "INSERT INTO window_scores (asset_id, model_id, model_version, window_end_index, window_end_ms, score, contributions, "
+        "threshold_version_id, created_at, rule_saw) SELECT asset_id, model_id, '2', window_end_index, window_end_ms, score + 1, "
+        "contributions, threshold_version_id, created_at, rule_saw FROM window_scores"
+    )
+    h = env.auth("maintenance")
+    whole = env.client.get("/v1/assets/pump-01/scores", headers=h).json()["items"]
+    assert len(whole) == 14  # ends 6, 8, ..., 18, each by versions 1 and 2
+    for size in (1, 2, 3, 5):
+        got, cursor = [], None
+        while True:
+            params = {"limit": size, **({"cursor": cursor} if cursor else {})}
+            page = env.client.get("/v1/assets/pump-01/scores", params=params, headers=h).json()
+            got += page["items"]
+            cursor = page["next_cursor"]
+            if not cursor:
+                break
+        assert got == whole, size
+
+
 def test_score_endpoint_scores_and_stores_nothing(env) -> None:
     centre = np.array(tiny_model.CENTER)
     scale = np.array(tiny_model.SCALE)
