@@ -256,6 +256,12 @@ def ingest(
     if not readings:
         raise BadInput("body.readings: give at least one reading", field="body.readings")
     now = now or datetime.now(timezone.utc)
+    if backfill and caller.role != "admin":
+        raise Forbidden(
+            f"key {caller.name!r} ({caller.role}) may not backfill: a backfill opens the alerts history would have opened, "
+            "so it takes an admin key; post without backfill for live readings",
+            field="query.backfill",
+        )
     bound = registry.bound_model(asset_id) if caller.may_use_asset(asset_id) else None
     if bound is not None:
         model = registry.get(bound)
@@ -406,17 +412,19 @@ def _prepare(
     maybe_stored = ts_ms if prev_max_ms is None else ts_ms[ts_ms <= prev_max_ms]
     stored = _stored_values(tx, asset_id=asset_id, ts_ms=maybe_stored, period=period) if len(maybe_stored) and asset is not None else {}
     new_pos, plan.duplicates = stream.new_readings(asset_id, ts_ms, dicts, stored)
-    if not new_pos:
+    if not new_pos and not (batch.backfill and asset is not None):
         return plan
     plan.new_rows = [(int(ts_ms[i]), dicts[i]) for i in new_pos]
     new_ms = ts_ms[new_pos]
-    plan.max_ms = int(new_ms.max()) if prev_max_ms is None else max(prev_max_ms, int(new_ms.max()))
+    newest = [t for t in (prev_max_ms, int(new_ms.max()) if len(new_ms) else None) if t is not None]
+    plan.max_ms = max(newest)
 
     # 2. Windows: the one streaming core, over a view of the stored rows.
     spec = stream.StreamSpec.of(m, hold_steps=settings.hold_steps, lateness_windows=settings.lateness_windows)
     marks = stream.Marks(prev_max_ms, _rule_last_idx(asset, period))
     view = _StoredView(tx, asset_id=asset_id, model=model, exists=asset is not None)
-    plan.windows = stream.plan_batch(spec, marks, view, new_ms, batch.values[new_pos], backfill=batch.backfill)
+    plan.windows = stream.plan_batch(spec, marks, view, new_ms, batch.values[new_pos], backfill=batch.backfill,
+                                     span_ms=(int(ts_ms.min()), int(ts_ms.max())))
     plan.late = plan.windows.late
     if len(plan.windows.ends) == 0:
         return plan
@@ -455,13 +463,13 @@ def _apply(
         threshold = store.threshold_in_force(conn, asset_id)
         assert threshold is not None
     result.threshold_version = threshold.version
-    if not plan.new_rows:
+    wp = plan.windows
+    if not plan.new_rows and not len(wp.ends) and not len(wp.gap_new):
         return result
     assert plan.max_ms is not None
     store.insert_readings(conn, asset_id, plan.new_rows, now)
     result.accepted = len(plan.new_rows)
 
-    wp = plan.windows
     key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
     if len(wp.gap_new):
         q.insert_skipped(tx.session, rows=[{**key, "window_end_index": int(e), "window_end_ms": int(round(int(e) * period * 1000)), "reason": "gap"} for e in wp.gap_new.tolist()])

@@ -141,8 +141,11 @@ def replay(
     progress: bool = True,
     client: httpx.Client | None = None,
     sleep: Callable[[float], None] = time.sleep,
+    backfill: bool = False,
 ) -> ReplaySummary:
-    """Post every asset's readings in batches of `batch`; `speed` = times real time (None: as fast as possible)."""
+    """Post every asset's readings in batches of `batch`; `speed` = times real time (None: as fast as possible).
+    `backfill` (an admin key): the service scores every due window of the history and marks
+    the alerts it opens as backfilled (service/stream.py)."""
     if batch < 1:
         raise ReplayError("--batch must be at least 1")
     if speed is not None and not speed > 0:
@@ -165,7 +168,8 @@ def replay(
                 if wait > 0:
                     sleep(wait)
             body = _body(channels, series[asset], lo, hi)
-            out = _post(http, f"/v1/assets/{asset}/readings", body, headers, retries, backoff_s, summary, sleep,
+            path = f"/v1/assets/{asset}/readings" + ("?backfill=true" if backfill else "")
+            out = _post(http, path, body, headers, retries, backoff_s, summary, sleep,
                         where=f"asset {asset} readings {lo}..{hi - 1}")
             summary.requests += 1
             per = summary.per_asset.setdefault(asset, {"accepted": 0, "windows_scored": 0, "alerts_opened": 0})

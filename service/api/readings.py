@@ -42,7 +42,10 @@ AssetId = Annotated[str, Path(pattern=ASSET_ID_PATTERN, description="1-64 charac
     response_model=ReadingsOut,
     openapi_extra={"requestBody": {"required": True, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/ReadingsIn"}}}}},
 )
-async def post_readings(asset_id: AssetId, request: Request, caller: MachineCaller) -> Response:
+async def post_readings(
+    asset_id: AssetId, request: Request, caller: MachineCaller,
+    backfill: Annotated[bool, Query(description="admin keys: score every due window of this history, no lateness limit; its alerts are marked backfilled")] = False,
+) -> Response:
     """Store a batch of an asset's readings; score the windows it completes; run the alert rule.
 
     The body (a ReadingsIn) is parsed and validated by pydantic-core straight from its bytes,
@@ -55,7 +58,7 @@ async def post_readings(asset_id: AssetId, request: Request, caller: MachineCall
     state = request.app.state
     result = ingest(
         db=state.db, registry=state.registry, settings=state.settings, metrics=state.metrics, caller=caller, asset_id=asset_id,
-        readings=[RawReading(r.ts, r.values) for r in body.readings],
+        readings=[RawReading(r.ts, r.values) for r in body.readings], backfill=backfill,
     )
     out = ReadingsOut(**{k: v for k, v in as_dict(result).items() if k in ReadingsOut.model_fields})
     return Response(out.model_dump_json(), media_type="application/json")

@@ -74,6 +74,7 @@ class AlertOut(BaseModel):
     closed_by: str | None
     outcome: Outcome | None
     close_note: str | None
+    backfilled: bool = Field(default=False, description="opened by a backfill of history (kilter replay --backfill); sends no notification")
 
 
 class ThresholdOut(BaseModel):
@@ -343,6 +344,7 @@ def alert_out(alert: Any) -> AlertOut:
         closed_by=alert.closed_by,
         outcome=alert.outcome,
         close_note=alert.close_note,
+        backfilled=bool(getattr(alert, "backfilled", False)),
     )
 
 
