@@ -1,8 +1,9 @@
-"""The ingest path: validate a batch -> plan: find duplicates, form the windows the new
-readings complete from *stored* readings plus the batch, score them in one batched ONNX
-Runtime call -> write, in one database transaction: readings, scores, the alert rule's
-alert rows. A batch is acknowledged only after it is committed, and a rejected batch
-stores nothing.
+"""The ingest path, a thin transaction script around the streaming core (service/stream.py):
+validate a batch -> plan: find duplicates, ask the core which windows the new readings make
+due (from *stored* readings plus the batch), score them in one batched ONNX Runtime call ->
+write, in one database transaction: readings, gap records, scores, the alert rule's alert
+rows, the asset's marks. A batch is acknowledged only after it is committed, and a rejected
+batch stores nothing.
 
 Decisions (the numbers are settings, service/settings.py):
 
@@ -11,27 +12,38 @@ Decisions (the numbers are settings, service/settings.py):
   names the timestamp. Within one batch the same timestamp twice with different values
   is a 422. Only timestamps up to the asset's newest stored reading (assets.last_reading_at,
   moved in the same transaction as every insert) are looked up: a later one cannot be stored.
-* Completion: the window ending on grid index e (e % stride == 0, service/grid.py) is due
-  once the asset has a reading at index >= e. Windows are formed from the stored readings
-  around them (window + max_fill_steps of look-back), so any replica can take any request;
-  each (asset, model version, window end) is scored once — a UNIQUE key in the database.
-* Lateness: windows ending more than `lateness_windows` window periods before the asset's
-  newest reading are not formed. Readings older than that are stored (and counted as
-  `late` in the response) but start no window. Late readings within the limit complete or
-  fill windows that were not scored yet; windows already scored are never re-scored.
-* Gaps: a window that holds readings but spans a gap longer than the gap policy's
+* Windows (the core's rule, stated in service/stream.py): the window ending on grid index e
+  (e % stride == 0, service/grid.py) is due once the asset's newest reading is at index
+  >= e + `hold_steps`, and is then formed once from the stored readings around it (window +
+  max_fill_steps of look-back), so any replica can take any request; each (asset, model
+  version, window end) is scored once — a UNIQUE key in the database. Where a batch is cut
+  never matters: the outcome is that of posting its readings one at a time in arrival order.
+* Lateness: a reading at or more than `hold_steps` behind the newest reading before it is
+  late; it is stored and never changes a scored window, but it can complete a window that
+  is due and not scored (a gap window, an outage) ending within `lateness_windows` window
+  periods of that newest reading. Readings too old even for that are counted as `late`.
+* Gaps: a formed window that holds readings but spans a gap longer than the gap policy's
   max_fill_steps is not scored. It is recorded once in skipped_windows, counted in the
   response's `gap_windows` and on the asset listing; if a late reading later closes the
   gap, the window is scored and its skipped record removed. Windows before an asset's
   first reading (warm-up) and windows holding no reading at all (an outage) are neither
   scored nor counted; the asset turns `silent` (see service/db/readings.derive_state).
 * Future: readings more than `future_tolerance_s` past the server clock are refused (422).
-* The alert rule (service/alerting.py) runs on the newly scored windows that are newer than
-  the last window the rule saw for the asset, in window-end order; its state is rebuilt
-  from the last `rule.memory` stored scores and the asset's active alert, so nothing lives
-  only in this process. A late window filling a hole behind that point is stored but does
-  not move the rule. A shelved asset (shelved_until in the future by the server clock)
-  opens no alert; an active one may still escalate and return.
+* Retention: readings older than `retention_days` before the server clock are refused
+  (422 naming the first): retention prunes by reading time, so they would be stored and
+  then silently deleted within the hour.
+* The alert rule (service/alerting.py) runs on the scored windows that end after every
+  window it saw before (service/stream.py marks them `rule_saw`), in the order they were
+  formed; its state is rebuilt from the last `rule.memory` stored scores it saw and the
+  asset's active alert, so nothing lives only in this process. A late window filling a
+  hole behind that point is stored (rule_saw false) but does not move the rule. A shelved
+  asset (shelved_until in the future by the server clock) opens no alert; an active one
+  may still escalate and return. The active alert is read with a row lock and only the
+  rule's own columns are written back (service/db/ingest_sql.py), so a person's close
+  during the request is never undone.
+* Backfill (`backfill=True`, admin keys; `kilter replay --backfill`): the core forms every
+  window of the batch's history that is not scored yet, with no lateness limit; alerts it
+  opens are marked backfilled (no notifications). Resending a backfill changes nothing.
 * Plan before the lock, write under it: the plan (the costly part: reads, windows,
   scoring) is made outside the write transaction, so it runs beside other requests'
   writes (SQLite has one writer; `serve --workers N` plans in N processes at once). The

@@ -56,7 +56,8 @@ class Settings(BaseSettings):
     auth_fail_limit: int = Field(default=20, ge=0, description="401s per client address per window before 429; 0 turns it off")
     auth_fail_window_s: float = Field(default=60.0, gt=0)
 
-    # Retention: readings and window scores older than this are pruned in the background.
+    # Retention: readings and window scores older than this are pruned in the background, by
+    # reading time; ingest refuses a reading already older (service/ingest.check_retention).
     retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
     retention_interval_s: float = Field(default=3600.0, gt=0)
 

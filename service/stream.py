@@ -241,8 +241,9 @@ def plan_batch(
             i = int(idx[a])
             lo_t = i if lateness is None else max(i, r0 - h - lateness * s + 1)
             touched = _ends_between(lo_t, min(i + reach, r0 - h), s)
-        # Only a touched window can have been formed already (it was due before this run).
-        runs.append((a, b, np.union1d(newly, touched), touched))
+        # Only a touched window, or one ending at or before the stored newest reading (a hold
+        # made longer since), can have been formed already: those are looked up.
+        runs.append((a, b, np.union1d(newly, touched), np.union1d(touched, newly[newly <= stored_newest])))
     return _form_runs(spec, marks, view, ts_ms, values, runs, plan)
 
 
@@ -385,7 +386,6 @@ class MemoryAsset:
         self.gap_ends: set[int] = set()
         self.newest_ms: int | None = None
         self.rule_last_idx: int | None = None
-        self.conflicts = 0
 
     # StoredView
     def readings(self, lo_ms: int, hi_ms: int) -> tuple[np.ndarray, np.ndarray]:
@@ -406,13 +406,12 @@ class MemoryAsset:
         return Marks(self.newest_ms, self.rule_last_idx)
 
     def post(self, ts_ms: np.ndarray, values: np.ndarray, *, backfill: bool = False) -> tuple[BatchPlan, int]:
-        """Store a batch (duplicates of stored timestamps dropped: the first value stays,
-        a different one counts in `conflicts`) and form its windows; (plan, new readings)."""
+        """Store a batch (a timestamp already stored, or twice in the batch, keeps its first
+        value: a file replayed here is not refused for it) and form its windows; (plan, new readings)."""
         ts_ms = np.asarray(ts_ms, dtype=np.int64)
         values = np.asarray(values, dtype=np.float64)
         span = (int(ts_ms.min()), int(ts_ms.max())) if len(ts_ms) else None
         keep = ~np.isin(ts_ms, self.ts_ms)
-        self.conflicts += int(np.count_nonzero(~keep))  # counted loosely: equal resends are duplicates too
         ts_ms, values = ts_ms[keep], values[keep]
         _, first = np.unique(ts_ms, return_index=True)
         first.sort()

@@ -29,18 +29,24 @@ def test_readings_older_than_the_retention_horizon_are_refused(tmp_path, tiny_di
 
 
 def test_background_pruning_keeps_alerts_and_audit(tmp_path, tiny_dir) -> None:
-    # Old data (2026-10-01) with an alert and a gap, stored while retention kept everything.
-    gen = start_env(tmp_path, tiny_dir, retention_days=0)
-    env = next(gen)
-    try:
-        old = env.post("pump-01", readings([*range(12), *range(16, 30)], 3.0)).json()
-        assert old["accepted"] == 26 and old["alerts_opened"] == 1 and old["gap_windows"] > 0
-    finally:
-        gen.close()
-    # The same database served with a 30-day retention: the old rows go, recent ones stay.
+    from datetime import datetime, timezone
+
+    import service.ingest as ingest_module
+    from service.api.deps import Caller
+
     gen = start_env(tmp_path, tiny_dir, retention_days=30, retention_interval_s=0.2)
     env = next(gen)
     try:
+        # Old data (2026-10-01) with an alert and a gap, stored back when it was recent (the
+        # ingest call's own clock), then aged past the horizon: the pruner removes it.
+        state = env.client.app.state
+        rows = readings([*range(12), *range(16, 30)], 3.0)
+        old = ingest_module.ingest(
+            db=state.db, registry=state.registry, settings=env.settings, metrics=state.metrics,
+            caller=Caller(0, "station", "machine", None), asset_id="pump-01",
+            readings=[ingest_module.RawReading(r["ts"], r["values"]) for r in rows], now=datetime(2026, 10, 1, 1, tzinfo=timezone.utc),
+        )
+        assert old.accepted == 26 and old.alerts_opened == 1 and old.gap_windows > 0
         recent_t0 = int(time.time()) // 120 * 120 - 3600
         env.post("pump-02", [reading(i, t0=recent_t0, jitter_s=0) for i in range(20)])
         deadline = time.monotonic() + 20
