@@ -22,7 +22,7 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
-from service.alerting import AlertRule
+from service.alerting import AlertRule, rule_of
 from service.caller import Caller
 from service.db import alerts as alert_q
 from service.db import thresholds as threshold_q
@@ -98,7 +98,7 @@ def change_threshold(
     a longer reason (BadInput otherwise); audited with the caller as actor and the risks."""
     asset = lock_asset(session, asset_id=asset_id)
     model, current = _in_force(session, registry, asset)
-    current_rule = threshold_q.rule_of(current)
+    current_rule = rule_of(current)
     change = propose(current_rule, model)
     risk = preview_change(session, asset=asset, model=model, current=current_rule, proposed=change.rule).risk
     confirm_change(risk, confirm_missed=confirm.missed, confirm_short_history=confirm.short_history, reason=reason)

@@ -20,9 +20,12 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Literal
+from typing import TYPE_CHECKING, Any, Literal, Protocol
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from service.manifest import Manifest
 
 Severity = Literal["warning", "critical"]
 TransitionKind = Literal["open", "escalate", "return"]
@@ -62,6 +65,36 @@ class AlertRule:
         if critical is None:
             critical = warning * (self.critical / self.warning)
         return replace(self, warning=warning, critical=max(critical, warning))
+
+
+TIMING = ("on_k", "on_n", "off_m", "deadband_frac")
+
+
+class RuleSettings(Protocol):
+    """Anything carrying a rule's levels and timing: a stored threshold version or its row."""
+
+    warning: float
+    critical: float
+    on_k: int
+    on_n: int
+    off_m: int
+    deadband_frac: float
+
+
+def rule_of(settings: RuleSettings, override: dict[str, Any] | None = None) -> AlertRule:
+    """The one builder of the rule in force from a threshold version; `override` (the asset's
+    rule_override: on_k, on_n, off_m, deadband_frac) replaces the timing fields it gives."""
+    timing = {k: getattr(settings, k) for k in TIMING}
+    for k in TIMING:
+        if override and override.get(k) is not None:
+            timing[k] = override[k]
+    return AlertRule(warning=float(settings.warning), critical=float(settings.critical), **timing)
+
+
+def manifest_rule(manifest: Manifest) -> AlertRule:
+    """The rule a model ships with: the manifest's thresholds and alert timing."""
+    t, r = manifest.thresholds, manifest.alert_rule
+    return AlertRule(t.warning, t.critical, r.on_k, r.on_n, r.off_m, r.deadband_frac)
 
 
 @dataclass(frozen=True)
@@ -121,6 +154,19 @@ def step(state: RuleState, score: float, rule: AlertRule, shelved: bool = False)
     return RuleState(recent, state.active), None
 
 
+def steps(
+    state: RuleState, scores: Iterable[float], rule: AlertRule, shelved: Sequence[bool] | np.ndarray | bool = False
+) -> tuple[RuleState, list[Transition | None]]:
+    """Feed scores in order (the one loop the service, `replay` and the preview share); the
+    final state and each score's transition. `shelved`: one flag, or one per score."""
+    out: list[Transition | None] = []
+    for i, score in enumerate(scores):
+        flag = shelved if isinstance(shelved, bool) else bool(shelved[i])
+        state, t = step(state, score, rule, shelved=flag)
+        out.append(t)
+    return state, out
+
+
 @dataclass
 class AlertSpan:
     """One alert as `replay` found it; indexes into the score sequence given to it."""
@@ -141,12 +187,11 @@ def replay(
     shelved: Sequence[bool] | np.ndarray | None = None,
 ) -> list[AlertSpan]:
     """Run the rule over a whole score sequence (time order), from a quiet state, and list the alerts it raises."""
-    state = RuleState()
+    scores = [float(x) for x in scores]
+    _, transitions = steps(RuleState(), scores, rule, shelved if shelved is not None else False)
     spans: list[AlertSpan] = []
     current: AlertSpan | None = None
-    for i, score in enumerate(scores):
-        is_shelved = bool(shelved[i]) if shelved is not None else False
-        state, transition = step(state, score, rule, shelved=is_shelved)
+    for i, (score, transition) in enumerate(zip(scores, transitions)):
         if transition is not None and transition.kind == "open":
             current = AlertSpan(i, i, transition.severity, float(score), i, False)
             current.history.append((i, "open", transition.severity))

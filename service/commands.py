@@ -45,13 +45,15 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     r = subparsers.add_parser("replay", help="play a readings file into a running service, as machines would")
     r.add_argument("--data", required=True, type=Path, help="readings file (CSV or Parquet; wide or long layout)")
     r.add_argument("--url", required=True, help="service base URL, e.g. http://127.0.0.1:8000")
-    r.add_argument("--key", required=True, help="a machine key")
+    r.add_argument("--key", required=True, help="a machine key (an admin key with --backfill)")
     r.add_argument("--speed", type=float, default=None, help="times real time (default: as fast as possible)")
     r.add_argument("--batch", type=int, default=60, help="readings per request (default 60)")
     r.add_argument("--assets", help="comma-separated subset of the file's assets")
     r.add_argument("--retries", type=int, default=6, help="retries per batch on connection errors, 5xx and 429")
     r.add_argument("--stop-on-refusal", action="store_true",
                    help="stop at the first batch the service refuses (default: skip it, report it at the end, exit 1)")
+    r.add_argument("--backfill", action="store_true",
+                   help="history, with an admin key: score every due window (no lateness limit), mark its alerts backfilled")
     r.set_defaults(handler=cmd_replay)
 
     d = subparsers.add_parser("demo", help="serve the bundled model on a fresh database and replay a demo day with faults")
@@ -290,7 +292,8 @@ def cmd_replay(args: argparse.Namespace) -> int:
                 raise ReplayError(f"{args.data}: no readings for {', '.join(missing)}; the file has {', '.join(series)}")
             series = {a: series[a] for a in wanted}
         summary = replay(url=args.url, key=args.key, channels=channels, series=series, batch=args.batch,
-                         speed=args.speed, retries=args.retries, stop_on_refusal=args.stop_on_refusal)
+                         speed=args.speed, retries=args.retries, stop_on_refusal=args.stop_on_refusal,
+                         backfill=args.backfill)
     except ReplayError as e:
         raise CommandError(str(e)) from e
     print(summary.line())

@@ -1,8 +1,9 @@
-"""The ingest path: validate a batch -> plan: find duplicates, form the windows the new
-readings complete from *stored* readings plus the batch, score them in one batched ONNX
-Runtime call -> write, in one database transaction: readings, scores, the alert rule's
-alert rows. A batch is acknowledged only after it is committed, and a rejected batch
-stores nothing.
+"""The ingest path, a thin transaction script around the streaming core (service/stream.py):
+validate a batch -> plan: find duplicates, ask the core which windows the new readings make
+due (from *stored* readings plus the batch), score them in one batched ONNX Runtime call ->
+write, in one database transaction: readings, gap records, scores, the alert rule's alert
+rows, the asset's marks. A batch is acknowledged only after it is committed, and a rejected
+batch stores nothing.
 
 Decisions (the numbers are settings, service/settings.py):
 
@@ -11,27 +12,38 @@ Decisions (the numbers are settings, service/settings.py):
   names the timestamp. Within one batch the same timestamp twice with different values
   is a 422. Only timestamps up to the asset's newest stored reading (assets.last_reading_at,
   moved in the same transaction as every insert) are looked up: a later one cannot be stored.
-* Completion: the window ending on grid index e (e % stride == 0, service/grid.py) is due
-  once the asset has a reading at index >= e. Windows are formed from the stored readings
-  around them (window + max_fill_steps of look-back), so any replica can take any request;
-  each (asset, model version, window end) is scored once — a UNIQUE key in the database.
-* Lateness: windows ending more than `lateness_windows` window periods before the asset's
-  newest reading are not formed. Readings older than that are stored (and counted as
-  `late` in the response) but start no window. Late readings within the limit complete or
-  fill windows that were not scored yet; windows already scored are never re-scored.
-* Gaps: a window that holds readings but spans a gap longer than the gap policy's
+* Windows (the core's rule, stated in service/stream.py): the window ending on grid index e
+  (e % stride == 0, service/grid.py) is due once the asset's newest reading is at index
+  >= e + `hold_steps`, and is then formed once from the stored readings around it (window +
+  max_fill_steps of look-back), so any replica can take any request; each (asset, model
+  version, window end) is scored once — a UNIQUE key in the database. Where a batch is cut
+  never matters: the outcome is that of posting its readings one at a time in arrival order.
+* Lateness: a reading at or more than `hold_steps` behind the newest reading before it is
+  late; it is stored and never changes a scored window, but it can complete a window that
+  is due and not scored (a gap window, an outage) ending within `lateness_windows` window
+  periods of that newest reading. Readings too old even for that are counted as `late`.
+* Gaps: a formed window that holds readings but spans a gap longer than the gap policy's
   max_fill_steps is not scored. It is recorded once in skipped_windows, counted in the
   response's `gap_windows` and on the asset listing; if a late reading later closes the
   gap, the window is scored and its skipped record removed. Windows before an asset's
   first reading (warm-up) and windows holding no reading at all (an outage) are neither
   scored nor counted; the asset turns `silent` (see service/db/readings.derive_state).
 * Future: readings more than `future_tolerance_s` past the server clock are refused (422).
-* The alert rule (service/alerting.py) runs on the newly scored windows that are newer than
-  the last window the rule saw for the asset, in window-end order; its state is rebuilt
-  from the last `rule.memory` stored scores and the asset's active alert, so nothing lives
-  only in this process. A late window filling a hole behind that point is stored but does
-  not move the rule. A shelved asset (shelved_until in the future by the server clock)
-  opens no alert; an active one may still escalate and return.
+* Retention: readings older than `retention_days` before the server clock are refused
+  (422 naming the first): retention prunes by reading time, so they would be stored and
+  then silently deleted within the hour.
+* The alert rule (service/alerting.py) runs on the scored windows that end after every
+  window it saw before (service/stream.py marks them `rule_saw`), in the order they were
+  formed; its state is rebuilt from the last `rule.memory` stored scores it saw and the
+  asset's active alert, so nothing lives only in this process. A late window filling a
+  hole behind that point is stored (rule_saw false) but does not move the rule. A shelved
+  asset (shelved_until in the future by the server clock) opens no alert; an active one
+  may still escalate and return. The active alert is read with a row lock and only the
+  rule's own columns are written back (service/db/ingest_sql.py), so a person's close
+  during the request is never undone.
+* Backfill (`backfill=True`, admin keys; `kilter replay --backfill`): the core forms every
+  window of the batch's history that is not scored yet, with no lateness limit; alerts it
+  opens are marked backfilled (no notifications). Resending a backfill changes nothing.
 * Plan before the lock, write under it: the plan (the costly part: reads, windows,
   scoring) is made outside the write transaction, so it runs beside other requests'
   writes (SQLite has one writer; `serve --workers N` plans in N processes at once). The
@@ -54,8 +66,8 @@ Decisions (the numbers are settings, service/settings.py):
 
 from __future__ import annotations
 
+import dataclasses
 import logging
-import math
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -68,17 +80,17 @@ from sqlalchemy import Connection
 from sqlalchemy.orm import Session
 
 from service import grid
-from service.alerting import AlertRule, RuleState, step
+from service import stream
+from service.alerting import RuleState, manifest_rule, rule_of
 from service.caller import Caller
 from service.db import readings as q
 from service.db import rule_alerts
 from service.db import ingest_sql as store
 from service.db.ingest_sql import AssetRow, ThresholdRow
-from service.db.models import Asset, SkippedWindow, ThresholdVersion
+from service.db.models import Asset, SkippedWindow
 from service.db.session import Database
 from service.db.bindings import ensure_threshold
 from service.errors import BadInput, Conflict, Forbidden, TooLarge
-from service.manifest import Manifest
 from service.metrics import Metrics
 from service.models_registry import LoadedModel, ModelRegistry
 from service.scoring import first_implausible, implausible_message
@@ -115,15 +127,6 @@ class IngestResult:
     first_window_end: datetime | None = None
     last_window_end: datetime | None = None
     opened_alert_ids: list[int] = field(default_factory=list)
-
-
-@dataclass(frozen=True)
-class WindowPlan:
-    """What the stored readings around a request allow: windows to score and gap windows."""
-
-    score_ends: np.ndarray  # int64 grid indexes, ascending
-    windows: np.ndarray  # float32 (B, W, C), filled, raw units
-    gap_ends: np.ndarray  # int64 grid indexes of windows spanning a long gap
 
 
 # --- validation (pure) ------------------------------------------------------------------
@@ -196,6 +199,24 @@ def _channel_error(i: int, given: dict[str, float | None], expected: list[str]) 
     )
 
 
+def check_retention(ts_ms: np.ndarray, *, now: datetime, retention_days: float) -> None:
+    """BadInput naming the first reading older than the retention horizon: it would be pruned
+    within the hour (retention prunes by reading time), so it is refused, never accepted and
+    then silently deleted. retention_days 0 keeps everything."""
+    if retention_days <= 0 or len(ts_ms) == 0:
+        return
+    horizon_ms = int((now.timestamp() - retention_days * 86400.0) * 1000)
+    old = np.flatnonzero(ts_ms < horizon_ms)
+    if len(old):
+        i = int(old[0])
+        raise BadInput(
+            f"body.readings[{i}].ts: {iso_ms(int(ts_ms[i]))} is older than the retention horizon "
+            f"({iso_ms(horizon_ms)}, KILTER_RETENTION_DAYS={retention_days:g}); readings that old would be pruned, "
+            f"so {len(old)} reading(s) of this batch are refused and nothing is stored",
+            field=f"body.readings[{i}].ts",
+        )
+
+
 def iso_s(ts_s: float) -> str:
     return datetime.fromtimestamp(ts_s, tz=timezone.utc).isoformat().replace("+00:00", "Z")
 
@@ -204,82 +225,12 @@ def iso_ms(ts_ms: int) -> str:
     return iso_s(ts_ms / 1000.0)
 
 
-# --- window formation (pure) -------------------------------------------------------------
-
-
-def candidate_ends(
-    *, new_idx: np.ndarray, prev_max_idx: int | None, max_idx: int, manifest: Manifest, lateness_windows: int
-) -> np.ndarray:
-    """Window ends a request may complete or change: due (<= max_idx), not behind the
-    lateness limit, and either newly due or within reach of a new reading."""
-    w, s, f = manifest.window, manifest.stride, manifest.gap_policy.max_fill_steps
-    cutoff = max_idx - lateness_windows * s
-    lo = max(int(new_idx.min()), cutoff)
-    first = lo + (-lo) % s
-    ends = np.arange(first, max_idx + 1, s, dtype=np.int64)
-    if len(ends) == 0:
-        return ends
-    newly_due = ends > (prev_max_idx if prev_max_idx is not None else np.iinfo(np.int64).min)
-    # A reading at index i changes the filled window ending at e iff e - w + 1 - f <= i <= e.
-    sorted_new = np.sort(new_idx)
-    lo_reach = np.searchsorted(sorted_new, ends - w + 1 - f, side="left")
-    hi_reach = np.searchsorted(sorted_new, ends, side="right")
-    touched = hi_reach > lo_reach
-    return ends[newly_due | touched]
-
-
-def plan_windows(
-    *, ts_s: np.ndarray, values: np.ndarray, candidates: np.ndarray, manifest: Manifest, first_idx: int | None
-) -> WindowPlan:
-    """Align the stored readings around `candidates` to the grid, fill by the one gap
-    policy, and split the candidates into scoreable windows and gap windows (those holding
-    at least one reading; starting at or after `first_idx` when it is given)."""
-    w, s, f = manifest.window, manifest.stride, manifest.gap_policy.max_fill_steps
-    period = manifest.sample_period_s
-    c = len(manifest.channels)
-    if len(candidates) == 0:
-        return WindowPlan(np.empty(0, np.int64), np.empty((0, w, c), np.float32), np.empty(0, np.int64))
-    candidates = np.unique(np.asarray(candidates, dtype=np.int64))
-    start = int(candidates[0]) - w + 1 - f
-    end = int(candidates[-1])
-    aligned = grid.align(ts_s, values, period, start=start, end=end)
-    filled = grid.Grid(aligned.start, grid.fill_gaps(aligned.values, f))
-    # A candidate is scoreable when its filled window holds no NaN (grid.window_ends' test,
-    # made on the candidates alone: every candidate window lies inside [start, end]).
-    hi = candidates - start + 1
-    lo = hi - w
-    bad_before = np.concatenate(([0], np.cumsum(~np.all(np.isfinite(filled.values), axis=1))))
-    ok = (bad_before[hi] - bad_before[lo]) == 0
-    score_ends = candidates[ok]
-    # Windows that hold at least one observed point but could not be filled are gap windows.
-    rest = candidates[~ok]
-    if len(rest):
-        observed_before = np.concatenate(([0], np.cumsum(np.any(np.isfinite(aligned.values), axis=1))))
-        holds_data = (observed_before[hi[~ok]] - observed_before[lo[~ok]]) > 0
-        after_warmup = (rest - w + 1) >= first_idx if first_idx is not None else np.ones(len(rest), dtype=bool)
-        gap_ends = rest[holds_data & after_warmup]
-    else:
-        gap_ends = rest
-    windows = grid.cut_windows(filled, score_ends, w) if len(score_ends) else np.empty((0, w, c), np.float32)
-    return WindowPlan(score_ends, windows, gap_ends)
+# --- helpers (pure) ----------------------------------------------------------------------
 
 
 def top_channels(shares: np.ndarray, names: Sequence[str], n: int = TOP_CHANNELS) -> list[dict[str, Any]]:
     order = np.argsort(-shares, kind="stable")[:n]
     return [{"channel": names[i], "share": round(float(shares[i]), 4)} for i in order]
-
-
-def rule_for(threshold: ThresholdVersion | ThresholdRow, override: dict[str, Any] | None) -> AlertRule:
-    timing = {"on_k": threshold.on_k, "on_n": threshold.on_n, "off_m": threshold.off_m, "deadband_frac": threshold.deadband_frac}
-    for k in timing:
-        if override and override.get(k) is not None:
-            timing[k] = override[k]
-    return AlertRule(warning=threshold.warning, critical=threshold.critical, **timing)
-
-
-def manifest_rule(manifest: Manifest) -> dict[str, float]:
-    t, r = manifest.thresholds, manifest.alert_rule
-    return {"warning": t.warning, "critical": t.critical, "on_k": r.on_k, "on_n": r.on_n, "off_m": r.off_m, "deadband_frac": r.deadband_frac}
 
 
 # --- the request -------------------------------------------------------------------------
@@ -321,13 +272,22 @@ def ingest(
     asset_id: str,
     readings: Sequence[RawReading],
     now: datetime | None = None,
+    backfill: bool = False,
 ) -> IngestResult:
-    """Store one batch of an asset's readings and score what it completes; see the module docstring."""
+    """Store one batch of an asset's readings and score what it makes due; see the module
+    docstring. `backfill` (people keys, checked by the route) forms the windows of history
+    with no lateness limit and marks the alerts it opens as backfilled."""
     if len(readings) > settings.max_batch_readings:
         raise TooLarge(f"{len(readings)} readings in one post; at most {settings.max_batch_readings} are accepted", field="body.readings")
     if not readings:
         raise BadInput("body.readings: give at least one reading", field="body.readings")
     now = now or datetime.now(timezone.utc)
+    if backfill and caller.role != "admin":
+        raise Forbidden(
+            f"key {caller.name!r} ({caller.role}) may not backfill: a backfill opens the alerts history would have opened, "
+            "so it takes an admin key; post without backfill for live readings",
+            field="query.backfill",
+        )
     bound = registry.bound_model(asset_id) if caller.may_use_asset(asset_id) else None
     if bound is not None:
         model = resolve_model(registry, None, asset_id, db=db, model_id=bound)
@@ -339,7 +299,8 @@ def ingest(
         readings, channels=model.channels, now_s=now.timestamp(), future_tolerance_s=settings.future_tolerance_s,
         manifest=model.manifest,
     )
-    batch = _Batch(asset_id=asset_id, ts_ms=ts_ms, values=values, dicts=dicts, now=now)
+    check_retention(ts_ms, now=now, retention_days=settings.retention_days)
+    batch = _Batch(asset_id=asset_id, ts_ms=ts_ms, values=values, dicts=dicts, now=now, backfill=backfill)
     # The plan (duplicates, windows, scores) is made before the write lock, from one view of
     # the asset's stored rows; under the lock it is used only if the asset's ingest_seq has
     # not moved since, else made again there. Scoring, the costly part, so runs beside other
@@ -422,6 +383,7 @@ class _Batch:
     values: np.ndarray
     dicts: list[dict[str, float | None]]
     now: datetime
+    backfill: bool = False
 
 
 @dataclass
@@ -433,17 +395,38 @@ class _Plan:
     late: int = 0
     new_rows: list[tuple[int, dict[str, Any]]] = field(default_factory=list)
     max_ms: int | None = None  # the asset's newest reading once the batch is stored
-    score_ends: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
+    windows: stream.BatchPlan = field(default_factory=stream.BatchPlan)
     scores: np.ndarray = field(default_factory=lambda: np.empty(0, np.float32))
     shares: np.ndarray = field(default_factory=lambda: np.empty((0, 0)))
-    gap_ends: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))  # not yet checked against recorded gaps
-    refilled: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))  # gap records to remove
+
+
+class _StoredView:
+    """The streaming core's view of one asset's stored rows (service/stream.StoredView)."""
+
+    def __init__(self, tx: _Tx, *, asset_id: str, model: LoadedModel, exists: bool) -> None:
+        self.tx, self.asset_id, self.exists = tx, asset_id, exists
+        self.key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
+        self.names = model.channels
+
+    def readings(self, lo_ms: int, hi_ms: int) -> tuple[np.ndarray, np.ndarray]:
+        rows = store.readings_between(self.tx.conn, self.asset_id, lo_ms, hi_ms) if self.exists else []
+        return np.fromiter((t for t, _ in rows), dtype=np.int64, count=len(rows)), _value_rows(rows, self.names)
+
+    def scored(self, lo: int, hi: int) -> set[int]:
+        return store.scored_between(self.tx.conn, lo=lo, hi=hi, **self.key) if self.exists else set()
+
+    def gaps(self, lo: int, hi: int) -> set[int]:
+        return q.window_ends_in(self.tx.session, table=SkippedWindow, lo=lo, hi=hi, **self.key) if self.exists else set()
+
+    def first_ms(self) -> int | None:
+        return q.reading_span_ms(self.tx.session, asset_id=self.asset_id)[0] if self.exists else None
 
 
 def _prepare(
     tx: _Tx, batch: _Batch, *, model: LoadedModel, settings: Settings, metrics: Metrics, asset: AssetRow | None
 ) -> _Plan:
-    """Duplicates, conflicts and the windows the new readings complete, scored; nothing written."""
+    """Duplicates, conflicts and the windows the new readings make due (service/stream.py),
+    scored; nothing written."""
     m = model.manifest
     period = m.sample_period_s
     asset_id, ts_ms, dicts = batch.asset_id, batch.ts_ms, batch.dicts
@@ -455,81 +438,37 @@ def _prepare(
     # writer), so a timestamp past it cannot be stored yet: only older ones are looked up.
     maybe_stored = ts_ms if prev_max_ms is None else ts_ms[ts_ms <= prev_max_ms]
     stored = _stored_values(tx, asset_id=asset_id, ts_ms=maybe_stored, period=period) if len(maybe_stored) and asset is not None else {}
-    new_pos: list[int] = []
-    taken: set[int] = set()
-    for i, (t, v) in enumerate(zip(ts_ms.tolist(), dicts)):
-        if t in stored:
-            if stored[t] != v:
-                raise Conflict(
-                    f"body.readings[{i}].ts: {iso_ms(t)} is already stored for {asset_id!r} with different values; "
-                    "a reading cannot be changed once stored",
-                    field=f"body.readings[{i}].ts",
-                    details={"ts": iso_ms(t), "stored": stored[t]},
-                )
-            plan.duplicates += 1
-        elif t in taken:
-            plan.duplicates += 1  # the same reading twice in this batch
-        else:
-            taken.add(t)
-            plan.new_rows.append((t, v))
-            new_pos.append(i)
-    if not plan.new_rows:
+    new_pos, plan.duplicates = stream.new_readings(asset_id, ts_ms, dicts, stored)
+    if not new_pos and not (batch.backfill and asset is not None):
         return plan
+    plan.new_rows = [(int(ts_ms[i]), dicts[i]) for i in new_pos]
     new_ms = ts_ms[new_pos]
-    new_values = batch.values[new_pos]
-    new_idx = grid.grid_index(new_ms / 1000.0, period)
-    max_ms = int(new_ms.max()) if prev_max_ms is None else max(prev_max_ms, int(new_ms.max()))
-    plan.max_ms = max_ms
-    max_idx = int(grid.grid_index(max_ms / 1000.0, period))
-    prev_max_idx = int(grid.grid_index(prev_max_ms / 1000.0, period)) if prev_max_ms is not None else None
-    cutoff = max_idx - settings.lateness_windows * m.stride
-    plan.late = int(np.count_nonzero(new_idx < cutoff))
+    newest = [t for t in (prev_max_ms, int(new_ms.max()) if len(new_ms) else None) if t is not None]
+    plan.max_ms = max(newest)
 
-    # 2. Windows: candidates, minus those already scored, formed from stored readings plus
-    # the batch. Only a window that was already due (end <= the previous newest reading) can
-    # have been scored or recorded as a gap before; newer ones need no look-up.
-    cands = candidate_ends(new_idx=new_idx, prev_max_idx=prev_max_idx, max_idx=max_idx, manifest=m, lateness_windows=settings.lateness_windows)
-    key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
-    was_due = cands[cands <= prev_max_idx] if prev_max_idx is not None else cands[:0]
-    if len(was_due):
-        done = store.scored_between(tx.conn, lo=int(was_due.min()), hi=int(was_due.max()), **key)
-        if done:
-            cands = cands[~np.isin(cands, np.fromiter(done, np.int64, len(done)))]
-    if len(cands) == 0:
+    # 2. Windows: the one streaming core, over a view of the stored rows.
+    spec = stream.StreamSpec.of(m, hold_steps=settings.hold_steps, lateness_windows=settings.lateness_windows)
+    marks = stream.Marks(prev_max_ms, _rule_last_idx(asset, period))
+    view = _StoredView(tx, asset_id=asset_id, model=model, exists=asset is not None)
+    plan.windows = stream.plan_batch(spec, marks, view, new_ms, batch.values[new_pos], backfill=batch.backfill,
+                                     span_ms=(int(ts_ms.min()), int(ts_ms.max())))
+    plan.late = plan.windows.late
+    if len(plan.windows.ends) == 0:
         return plan
-    reach_lo = int(cands.min()) - m.window + 1 - m.gap_policy.max_fill_steps
-    start_ms = int(math.floor((reach_lo - 0.5) * period * 1000))
-    end_ms_excl = int(math.ceil((int(cands.max()) + 0.5) * period * 1000))
-    names = model.channels
-    # The stored readings in reach and the batch's new ones (not stored yet, so the two never
-    # overlap; the batch's are already an array), in time order.
-    first_new_ms = int(new_ms.min())
-    before = store.readings_between(tx.conn, asset_id, start_ms, end_ms_excl - 1) if asset is not None else []
-    keep = (new_ms >= start_ms) & (new_ms < end_ms_excl)
-    ts_all = np.concatenate([np.fromiter((t for t, _ in before), dtype=np.float64, count=len(before)), new_ms[keep].astype(np.float64)])
-    vals_all = np.concatenate([_value_rows(before, names), new_values[keep]])
-    order = np.argsort(ts_all, kind="stable")
-    ts_all, vals_all = ts_all[order], vals_all[order]
-    windows = plan_windows(ts_s=ts_all / 1000.0, values=vals_all, candidates=cands, manifest=m, first_idx=None)
-
-    # Gap windows; those before the asset's first reading are warm-up, not gaps.
-    gap_ends = windows.gap_ends
-    if len(gap_ends):
-        first_ms, _ = q.reading_span_ms(tx.session, asset_id=asset_id) if asset is not None else (None, None)
-        first_ms = min(first_ms, first_new_ms) if first_ms is not None else first_new_ms
-        first_idx = int(grid.grid_index(first_ms / 1000.0, period))
-        plan.gap_ends = gap_ends[(gap_ends - m.window + 1) >= first_idx]
-    if len(windows.score_ends) == 0:
-        return plan
-    # A gap closed by a late reading: its window is scored now and its gap record goes.
-    plan.refilled = windows.score_ends[windows.score_ends <= prev_max_idx] if prev_max_idx is not None else windows.score_ends[:0]
 
     # 3. Score every window of the request in one batched call.
     t0 = time.perf_counter()
-    scored = model.scorer.score(windows.windows)
+    scored = model.scorer.score(plan.windows.windows(m.window))
     metrics.scoring_seconds.observe(time.perf_counter() - t0)
-    plan.score_ends, plan.scores, plan.shares = windows.score_ends, scored.score, scored.contributions
+    plan.scores, plan.shares = scored.score, scored.contributions
     return plan
+
+
+def _rule_last_idx(asset: AssetRow | None, period: float) -> int | None:
+    """The last window end the rule saw, as a grid index (the asset row keeps its time)."""
+    if asset is None or asset.last_window_end_ms is None:
+        return None
+    return int(grid.grid_index(asset.last_window_end_ms / 1000.0, period))
 
 
 def _apply(
@@ -551,39 +490,40 @@ def _apply(
         threshold = store.threshold_in_force(conn, asset_id)
         assert threshold is not None
     result.threshold_version = threshold.version
-    if not plan.new_rows:
+    wp = plan.windows
+    if not plan.new_rows and not len(wp.ends) and not len(wp.gap_new):
         return result
     assert plan.max_ms is not None
     store.insert_readings(conn, asset_id, plan.new_rows, now)
     result.accepted = len(plan.new_rows)
 
     key = {"asset_id": asset_id, "model_id": model.model_id, "model_version": model.version}
-    if len(plan.gap_ends):
-        already = q.window_ends_in(tx.session, table=SkippedWindow, lo=int(plan.gap_ends.min()), hi=int(plan.gap_ends.max()), **key)
-        fresh = [int(e) for e in plan.gap_ends if int(e) not in already]
-        q.insert_skipped(tx.session, rows=[{**key, "window_end_index": e, "window_end_ms": int(round(e * period * 1000)), "reason": "gap"} for e in fresh])
-        result.gap_windows = len(fresh)
-    if len(plan.refilled):
-        q.delete_skipped(tx.session, ends=[int(e) for e in plan.refilled], **key)
+    if len(wp.gap_new):
+        q.insert_skipped(tx.session, rows=[{**key, "window_end_index": int(e), "window_end_ms": int(round(int(e) * period * 1000)), "reason": "gap"} for e in wp.gap_new.tolist()])
+        result.gap_windows = len(wp.gap_new)
+    if len(wp.refilled):
+        q.delete_skipped(tx.session, ends=[int(e) for e in wp.refilled], **key)
 
     last_window_end_ms, last_score = asset.last_window_end_ms, asset.last_score
-    if len(plan.score_ends):
+    if len(wp.ends):
         names = model.channels
-        end_ms = np.round(plan.score_ends * period * 1000).astype(np.int64)
+        end_ms = np.round(wp.ends * period * 1000).astype(np.int64)
         store.insert_scores(conn, [
             {**key, "window_end_index": int(e), "window_end_ms": int(ms), "score": float(sc),
-             "contributions": {c: round(float(x), 6) for c, x in zip(names, sh)}, "threshold_version_id": threshold.id, "created_at": now}
-            for e, ms, sc, sh in zip(plan.score_ends.tolist(), end_ms.tolist(), plan.scores, plan.shares)
+             "contributions": {c: round(float(x), 6) for c, x in zip(names, sh)}, "threshold_version_id": threshold.id,
+             "created_at": now, "rule_saw": bool(saw)}
+            for e, ms, sc, sh, saw in zip(wp.ends.tolist(), end_ms.tolist(), plan.scores, plan.shares, wp.rule_saw.tolist())
         ])
-        result.windows_scored = len(plan.score_ends)
-        result.first_window_end = q.ms_to_dt(int(end_ms[0]))
-        result.last_window_end = q.ms_to_dt(int(end_ms[-1]))
-        # 4. The alert rule over the windows newer than the last one it saw.
-        fresh_mask = end_ms > (asset.last_window_end_ms if asset.last_window_end_ms is not None else np.iinfo(np.int64).min)
-        if np.any(fresh_mask):
-            _run_rule(conn, asset=asset, model=model, threshold=threshold, ends=plan.score_ends[fresh_mask], end_ms=end_ms[fresh_mask],
-                      scores=plan.scores[fresh_mask], shares=plan.shares[fresh_mask], now=now, result=result, metrics=metrics)
-            last_window_end_ms, last_score = int(end_ms[fresh_mask][-1]), float(plan.scores[fresh_mask][-1])
+        result.windows_scored = len(wp.ends)
+        result.first_window_end = q.ms_to_dt(int(end_ms.min()))
+        result.last_window_end = q.ms_to_dt(int(end_ms.max()))
+        # 4. The alert rule over the windows it sees (newer than every one it saw before).
+        saw = wp.rule_saw
+        if np.any(saw):
+            _run_rule(conn, asset=asset, model=model, threshold=threshold, ends=wp.ends[saw], end_ms=end_ms[saw],
+                      scores=plan.scores[saw], shares=plan.shares[saw], now=now, result=result, metrics=metrics,
+                      backfilled=batch.backfill)
+            last_window_end_ms, last_score = int(end_ms[saw][-1]), float(plan.scores[saw][-1])
     # Every batch that stored readings moves the asset's newest-reading mark (the duplicate
     # check relies on it) and its ingest_seq (the plan check relies on it).
     store.update_asset(conn, asset_id=asset_id, last_reading_at=q.ms_to_dt(plan.max_ms), last_window_end_ms=last_window_end_ms,
@@ -625,16 +565,18 @@ def _stored_values(
 def _run_rule(
     conn: Connection, *, asset: AssetRow, model: LoadedModel, threshold: ThresholdRow, ends: np.ndarray,
     end_ms: np.ndarray, scores: np.ndarray, shares: np.ndarray, now: datetime, result: IngestResult, metrics: Metrics,
+    backfilled: bool,
 ) -> None:
-    rule = rule_for(threshold, asset.rule_override)
+    """The core's rule transitions over the windows the rule sees, written as alert rows."""
+    rule = rule_of(threshold, asset.rule_override)
     history = store.recent_scores(conn, asset_id=asset.asset_id, model_id=model.model_id, model_version=model.version,
                                 before_index=int(ends[0]), limit=rule.memory)
     alert = store.active_alert(conn, asset.asset_id)
     state = RuleState.from_history(history, alert.severity if alert else None, rule)  # type: ignore[arg-type]
     shelved = asset.shelved_until is not None and asset.shelved_until > now
+    _, transitions = stream.rule_steps(state, scores, rule, shelved=shelved)
     names = model.channels
-    for ms, score, sh in zip(end_ms.tolist(), scores.tolist(), shares):
-        state, transition = step(state, score, rule, shelved=shelved)
+    for ms, score, sh, transition in zip(end_ms.tolist(), scores.tolist(), shares, transitions):
         if transition is None and alert is None:
             continue
         at = q.ms_to_dt(ms)
@@ -644,6 +586,7 @@ def _run_rule(
             alert = rule_alerts.open_alert(
                 conn, asset_id=asset.asset_id, severity=transition.severity, at=at, score=score, top_channels=tops,
                 model_id=model.model_id, model_version=model.version, threshold_version_id=threshold.id, details=detail,
+                backfilled=backfilled,
             )
             result.alerts_opened += 1
             result.opened_alert_ids.append(alert.id)

@@ -176,10 +176,13 @@ def replay(
     client: httpx.Client | None = None,
     sleep: Callable[[float], None] = time.sleep,
     stop_on_refusal: bool = False,
+    backfill: bool = False,
 ) -> ReplaySummary:
     """Post every asset's readings in batches of `batch`; `speed` = times real time (None: as
     fast as possible). Batches refused for their content are skipped and listed in the
-    summary's `refused` (see the module docstring)."""
+    summary's `refused` (see the module docstring). `backfill` (an admin key): the service
+    scores every due window of the history and marks the alerts it opens as backfilled
+    (service/stream.py)."""
     if batch < 1:
         raise ReplayError("--batch must be at least 1")
     if speed is not None and not speed > 0:
@@ -205,7 +208,8 @@ def replay(
             body = _body(channels, series[asset], lo, hi)
             where = f"asset {asset} readings {lo}..{hi - 1}"
             try:
-                out = _post(http, f"/v1/assets/{asset}/readings", body, headers, retries, backoff_s, summary, sleep, where=where)
+                path = f"/v1/assets/{asset}/readings" + ("?backfill=true" if backfill else "")
+                out = _post(http, path, body, headers, retries, backoff_s, summary, sleep, where=where)
             except BatchRefused as e:
                 summary.requests += 1
                 summary.refused.append(RefusedBatch(where, e.status, e.server_message))

@@ -21,7 +21,7 @@ endpoints and the dashboard call them with rows read by service/db/thresholds.py
 from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Literal
 
 import numpy as np
@@ -176,7 +176,7 @@ def propose_rule(
         raise ValueError("critical needs warning beside it")
     given = {"on_k": on_k, "on_n": on_n, "off_m": off_m, "deadband_frac": deadband_frac}
     timing = {f: given[f] if given[f] is not None else getattr(current, f) for f in TIMING_FIELDS}
-    base = AlertRule(warning=current.warning, critical=current.critical, **timing)  # ValueError on bad timing
+    base = replace(current, **timing)  # the rule in force with the proposed timing; ValueError on bad timing
     if false_alarms_per_week is not None:
         if cal is None:
             raise ValueError("a false-alarm budget needs the model's calibration scores, and there are none")

@@ -41,7 +41,12 @@ class Settings(BaseSettings):
     max_score_windows: int = Field(default=512, ge=1, description="windows per POST /v1/score; more is 413")
     future_tolerance_s: float = Field(default=300.0, ge=0, description="how far past the server clock a reading may lie")
     lateness_windows: int = Field(
-        default=36, ge=0, description="windows ending more than this many window periods before the newest reading are not scored"
+        default=36, ge=0,
+        description="a late reading can still complete an unscored window ending at most this many window periods before the newest reading",
+    )
+    hold_steps: int = Field(
+        default=0, ge=0,
+        description="grid steps a window waits past its end before it is formed: readings this far out of order still count (service/stream.py)",
     )
     silent_after_windows: float = Field(default=3.0, gt=0, description="asset is silent after this many window periods without a reading")
 
@@ -57,7 +62,8 @@ class Settings(BaseSettings):
     # or networks (10.0.0.0/8). Default none: the client address is the TCP peer.
     trusted_proxies: str = Field(default="", description="comma-separated proxy addresses or CIDR networks trusted for X-Forwarded-For")
 
-    # Retention: readings and window scores older than this are pruned in the background.
+    # Retention: readings and window scores older than this are pruned in the background, by
+    # reading time; ingest refuses a reading already older (service/ingest.check_retention).
     retention_days: float = Field(default=90.0, ge=0, description="0 keeps everything")
     retention_interval_s: float = Field(default=3600.0, gt=0)
 

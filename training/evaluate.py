@@ -1,9 +1,12 @@
 """Replay labelled history through the service's own scoring and alert code, beside baselines.
 
-The model's path is exactly the service's: readings go on the grid and are filled by
-service.grid (align, fill_gaps, window_ends, cut_windows), windows are scored by
-service.scoring.OnnxScorer, and alerts come from service.alerting.replay with the
-manifest's thresholds and alert timing. Figures are defined in training/metrics.py.
+The model's path is exactly the service's: each asset's readings are fed, in the file's
+order and in batches as `kilter replay` posts them, through the service's streaming core
+(service.stream: the windows a batch makes due, filled by the one gap policy of
+service.grid), the due windows are scored by service.scoring.OnnxScorer, and alerts come
+from service.alerting.replay (the rule's one `step`) with the manifest's thresholds and
+alert timing, over the windows the live rule would see. Figures are defined in
+training/metrics.py.
 
 Which history is evaluated: by default only windows lying wholly after the end of the
 model's training data (manifest `training.end`), so nothing the model or its calibration
@@ -29,8 +32,8 @@ from pathlib import Path
 
 import numpy as np
 
-from service.alerting import AlertRule, replay
-from service.grid import Grid, align, cut_windows, fill_gaps, window_ends
+from service import stream
+from service.alerting import AlertRule, manifest_rule, replay
 from service.manifest import Manifest, load_calibration, load_manifest
 from service.scoring import OnnxScorer
 from service.thresholds import CalibrationSet, threshold_for_budget
@@ -136,23 +139,50 @@ def _bar(total: int, desc: str, show: bool):  # type: ignore[no-untyped-def]
 # ------------------------------------------------------------------------ windows
 
 
-def asset_grid(series: AssetSeries, manifest: Manifest) -> Grid:
-    """The asset's readings on the model's grid, gaps filled by the one policy (service.grid)."""
-    grid = align(series.times_s, series.values, manifest.sample_period_s)
-    return Grid(grid.start, fill_gaps(grid.values, manifest.gap_policy.max_fill_steps))
+REPLAY_BATCH = 5000  # readings per batch fed to the streaming core (any size gives the same windows)
 
 
-def evaluation_ends(grid: Grid, manifest: Manifest, start_s: float, end_s: float) -> np.ndarray:
-    """Window ends (grid indexes) whose whole window lies in [start_s, end_s]."""
+@dataclass
+class DueWindows:
+    """The windows the streaming core formed for one asset, as the live service would."""
+
+    plans: list[stream.BatchPlan]
+    window: int
+
+    def ends(self) -> np.ndarray:
+        """Window ends (grid indexes) the live rule sees, in the order it sees them."""
+        parts = [p.ends[p.rule_saw] for p in self.plans if len(p.ends)]
+        return np.concatenate(parts) if parts else np.empty(0, np.int64)
+
+    def chunks(self, keep: Callable[[np.ndarray], np.ndarray], chunk: int = CHUNK_WINDOWS) -> Iterator[np.ndarray]:
+        """The kept windows (keep(ends) is a mask over the rule's ends), cut `chunk` at a time, in order."""
+        for p in self.plans:
+            if not len(p.ends):
+                continue
+            sel = p.rule_saw.copy()
+            sel[sel] = keep(p.ends[p.rule_saw])
+            if not np.any(sel):
+                continue
+            at = np.flatnonzero(sel)
+            for i in range(0, len(at), chunk):
+                part = np.zeros(len(sel), dtype=bool)
+                part[at[i : i + chunk]] = True
+                yield p.windows(self.window, part)
+
+
+def due_windows(series: AssetSeries, manifest: Manifest, *, batch: int = REPLAY_BATCH, hold_steps: int = 0) -> DueWindows:
+    """Feed the asset's readings through the service's streaming core in batches of `batch`."""
+    spec = stream.StreamSpec.of(manifest, hold_steps=hold_steps, lateness_windows=None)
+    plans: list[stream.BatchPlan] = []
+    stream.replay_series(spec, series.times_s, series.values, batch=batch, on_plan=plans.append)
+    return DueWindows(plans, manifest.window)
+
+
+def evaluation_ends(ends: np.ndarray, manifest: Manifest, start_s: float, end_s: float) -> np.ndarray:
+    """Mask over window ends (grid indexes) whose whole window lies in [start_s, end_s]."""
     period = manifest.sample_period_s
-    ends = window_ends(grid, manifest.window, manifest.stride)
     first_point_s = (ends - manifest.window + 1) * period
-    return ends[(first_point_s >= start_s) & (ends * period <= end_s)]
-
-
-def iter_chunks(grid: Grid, ends: np.ndarray, window: int, chunk: int = CHUNK_WINDOWS) -> Iterator[np.ndarray]:
-    for i in range(0, len(ends), chunk):
-        yield cut_windows(grid, ends[i : i + chunk], window)
+    return (first_point_s >= start_s) & (ends * period <= end_s)
 
 
 # ------------------------------------------------------------------------ inputs
@@ -345,17 +375,18 @@ def evaluate(
     show = progress_enabled() if progress is None else progress
     notes: list[str] = []
 
-    grids: dict[str, tuple[Grid, np.ndarray]] = {}
+    grids: dict[str, tuple[DueWindows, np.ndarray]] = {}
     for s in series:
         if s.values.ndim != 2 or s.values.shape[1] != len(manifest.channels):
             raise EvaluationError(
                 f"asset {s.asset!r}: readings have {s.values.shape[-1]} channels, the model needs "
                 f"{len(manifest.channels)} ({', '.join(manifest.channel_names)})"
             )
-        grid = asset_grid(s, manifest)
-        ends = evaluation_ends(grid, manifest, start, end)
+        due = due_windows(s, manifest)
+        all_ends = due.ends()
+        ends = all_ends[evaluation_ends(all_ends, manifest, start, end)]
         if len(ends):
-            grids[s.asset] = (grid, ends)
+            grids[s.asset] = (due, ends)
         else:
             notes.append(f"asset {s.asset}: no complete window in the evaluation stretch")
     if not grids:
@@ -366,14 +397,7 @@ def evaluate(
 
     fitted: list[Baseline] = []
     scaling = Scaling(np.asarray(manifest.scaler.center), np.asarray(manifest.scaler.scale))
-    timing = AlertRule(
-        warning=manifest.thresholds.warning,
-        critical=manifest.thresholds.critical,
-        on_k=manifest.alert_rule.on_k,
-        on_n=manifest.alert_rule.on_n,
-        off_m=manifest.alert_rule.off_m,
-        deadband_frac=manifest.alert_rule.deadband_frac,
-    )
+    timing = manifest_rule(manifest)
     budget = manifest.thresholds.warning_budget_per_week
     model_method: str = manifest.thresholds.method
     if budget_per_week is not None:
@@ -409,11 +433,12 @@ def evaluate(
     by_asset: dict[str, list[EventLike]] = {}
     for ev in events:
         by_asset.setdefault(ev.asset, []).append(ev)
-    for asset, (grid, ends) in grids.items():
+    for asset, (due, ends) in grids.items():
         end_times = ends.astype(np.float64) * period
         m_parts: list[np.ndarray] = []
         b_parts: dict[str, list[np.ndarray]] = {b.name: [] for b in fitted}
-        for raw in iter_chunks(grid, ends, manifest.window):
+        keep = lambda e: evaluation_ends(e, manifest, start, end)  # noqa: E731
+        for raw in due.chunks(keep):
             m_parts.append(scorer.score(raw).score.astype(np.float64))
             for b in fitted:
                 b_parts[b.name].append(score_windows(b, scaling, raw))

@@ -62,7 +62,10 @@ READINGS_EXAMPLE = {
     openapi_extra={"requestBody": {"required": True, "content": {"application/json": {
         "schema": {"$ref": "#/components/schemas/ReadingsIn"}, "example": READINGS_EXAMPLE}}}},
 )
-async def post_readings(asset_id: AssetId, request: Request, caller: MachineCaller) -> Response:
+async def post_readings(
+    asset_id: AssetId, request: Request, caller: MachineCaller,
+    backfill: Annotated[bool, Query(description="admin keys: score every due window of this history, no lateness limit; its alerts are marked backfilled")] = False,
+) -> Response:
     """Send one batch of an asset's readings, oldest or newest first, up to
     KILTER_MAX_BATCH_READINGS per post. Each reading has a time (`ts`: ISO-8601 with an
     offset, or epoch seconds) and a value for every channel of the asset's model (`null`
@@ -78,15 +81,15 @@ async def post_readings(asset_id: AssetId, request: Request, caller: MachineCall
     # thread pool in one hop (DEVELOPERS.md, "The event loop stays free").
     require_json(request.headers.get("content-type"))
     raw = await request.body()
-    return await run_in_threadpool(_post_readings, request, asset_id, caller, raw)
+    return await run_in_threadpool(_post_readings, request, asset_id, caller, raw, backfill)
 
 
-def _post_readings(request: Request, asset_id: str, caller: Caller, raw: bytes) -> Response:
+def _post_readings(request: Request, asset_id: str, caller: Caller, raw: bytes, backfill: bool) -> Response:
     body = parse_body(ReadingsIn, raw)
     state = request.app.state
     result = ingest(
         db=state.db, registry=state.registry, settings=state.settings, metrics=state.metrics, caller=caller, asset_id=asset_id,
-        readings=[RawReading(r.ts, r.values) for r in body.readings],
+        readings=[RawReading(r.ts, r.values) for r in body.readings], backfill=backfill,
     )
     out = ReadingsOut(**{k: v for k, v in as_dict(result).items() if k in ReadingsOut.model_fields})
     return Response(out.model_dump_json(), media_type="application/json")
@@ -185,10 +188,13 @@ def asset_scores(
     after = None
     if cursor:
         try:
-            after = int(_decode(cursor, "query.cursor"))
+            ms, row_id = _decode(cursor, "query.cursor").split(":")
+            after = (int(ms), int(row_id))
         except ValueError as e:
             raise BadInput("cursor is not one this service gave out; start again without it", field="query.cursor") from e
-    points = q.asset_scores(session, asset_id=asset_id, since=since, until=until, after_index=after, limit=limit + 1)
-    items = [ScorePointOut(**{k: v for k, v in as_dict(p).items() if k != "window_end_index"}) for p in points[:limit]]
-    nxt = _encode(str(points[limit - 1].window_end_index)) if len(points) > limit else None
+    points = q.asset_scores(session, asset_id=asset_id, since=since, until=until, after=after, limit=limit + 1)
+    items = [ScorePointOut(**{k: v for k, v in as_dict(p).items() if k not in ("window_end_index", "id")}) for p in points[:limit]]
+    # The cursor is the page's order key (window end, row id), so no row is skipped or repeated.
+    last = points[limit - 1] if len(points) > limit else None
+    nxt = _encode(f"{q.dt_to_ms(last.window_end)}:{last.id}") if last is not None else None
     return ScoresPage(asset_id=asset_id, since=since, until=until, items=items, next_cursor=nxt)

@@ -76,6 +76,7 @@ class AlertOut(BaseModel):
     closed_by: str | None
     outcome: Outcome | None
     close_note: str | None
+    backfilled: bool = Field(default=False, description="opened by a backfill of history (kilter replay --backfill); sends no notification")
 
 
 class ThresholdOut(BaseModel):
@@ -371,6 +372,7 @@ def alert_out(alert: Any, warning_level: float | None = None) -> AlertOut:
         closed_by=alert.closed_by,
         outcome=alert.outcome,
         close_note=alert.close_note,
+        backfilled=bool(getattr(alert, "backfilled", False)),
     )
 
 

@@ -20,7 +20,7 @@ from fastapi import APIRouter, Path
 from sqlalchemy.orm import Session
 
 from service import actions
-from service.alerting import AlertRule
+from service.alerting import AlertRule, manifest_rule, rule_of
 from service.api.deps import DbSession, MaintenanceCaller, OperatorCaller, RegistryDep, WriteSession
 from service.api.schemas_alerts import (
     BudgetOut,
@@ -65,7 +65,7 @@ def _in_force(db: DbSession, asset: Asset, model: LoadedModel) -> ThresholdVersi
     current = q.threshold_in_force(db, asset_id=asset.asset_id)
     if current is not None:
         return current
-    rule = q.manifest_rule(model.manifest)
+    rule = manifest_rule(model.manifest)
     return ThresholdVersion(
         asset_id=asset.asset_id,
         version=1,
@@ -151,7 +151,7 @@ def risk_out(risk: RetuneRisk) -> RiskOut:
 def preview_threshold(asset_id: AssetId, body: PreviewIn, db: DbSession, _caller: OperatorCaller, registry: RegistryDep) -> PreviewOut:
     asset = q.get_asset(db, asset_id=asset_id)
     model = _model(registry, asset)
-    current = q.rule_of(_in_force(db, asset, model))
+    current = rule_of(_in_force(db, asset, model))
     proposed = _propose(body, current, model)
     done = actions.preview_change(db, asset=asset, model=model, current=current, proposed=proposed.rule, since=body.since, until=body.until)
     since, until, past, result = done.since, done.until, done.past, done.result

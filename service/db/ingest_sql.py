@@ -60,6 +60,7 @@ class AlertRow:
     condition: str = "active"
     returned_at: datetime | None = None
     active_key: str | None = None
+    backfilled: bool = False  # opened by a backfill of history: sends no notification
     dirty: bool = False
 
 
@@ -67,6 +68,10 @@ class AlertRow:
 _ASSET_COLS = tuple(f.name for f in fields(AssetRow))
 _THRESHOLD_COLS = tuple(f.name for f in fields(ThresholdRow))
 _ALERT_COLS = tuple(f.name for f in fields(AlertRow) if f.name != "dirty")
+# The columns the rule owns while an alert is active (extend, escalate); a return also
+# clears the active slot. state, outcome, acknowledgement and closing are people's.
+_RULE_COLS = ("severity", "last_seen_at", "peak_score", "peak_at", "top_channels")
+_RETURN_COLS = ("condition", "returned_at")
 
 
 def _all_columns(table: Any) -> dict[str, Any]:
@@ -97,8 +102,10 @@ def _asset_locked() -> Any:
 
 
 def _threshold_in_force() -> Any:
+    from service.db.thresholds import in_force_select  # the one query for the version in force
+
     t = ThresholdVersion.__table__
-    return select(*(t.c[c] for c in _THRESHOLD_COLS)).where(t.c.asset_id == bindparam("asset_id")).order_by(t.c.version.desc()).limit(1)
+    return in_force_select(*(t.c[c] for c in _THRESHOLD_COLS))
 
 
 def _readings_between() -> Any:
@@ -123,15 +130,19 @@ def _recent_scores() -> Any:
     t = WindowScore.__table__
     return (
         select(t.c.score)
-        .where(*_window_key(t), t.c.window_end_index < bindparam("before_index"))
+        .where(*_window_key(t), t.c.window_end_index < bindparam("before_index"), t.c.rule_saw.is_(True))
         .order_by(t.c.window_end_index.desc())
         .limit(bindparam("limit", type_=Integer))
     )
 
 
 def _active_alert() -> Any:
+    # Locked for the transaction (FOR UPDATE on PostgreSQL; SQLite's write transaction
+    # already excludes other writers): a person's close waits for this request, or this
+    # request waits for the close and then finds no active alert (PostgreSQL re-checks the
+    # WHERE clause on the row as committed).
     t = Alert.__table__
-    return select(*(t.c[c] for c in _ALERT_COLS)).where(t.c.active_key == bindparam("asset_id"))
+    return select(*(t.c[c] for c in _ALERT_COLS)).where(t.c.active_key == bindparam("asset_id"), t.c.state != "closed").with_for_update()
 
 
 def _insert_reading() -> Any:
@@ -153,7 +164,16 @@ def _insert_event() -> Any:
 
 def _update_alert() -> Any:
     t = Alert.__table__
-    return update(t).where(t.c.id == bindparam("alert_id")).values(_bound(t, _ALERT_COLS[1:]))
+    return update(t).where(t.c.id == bindparam("alert_id"), t.c.state != "closed").values(_bound(t, _RULE_COLS))
+
+
+def _return_alert() -> Any:
+    t = Alert.__table__
+    return (
+        update(t)
+        .where(t.c.id == bindparam("alert_id"), t.c.state != "closed")
+        .values(**_bound(t, _RULE_COLS + _RETURN_COLS), active_key=None)
+    )
 
 
 _ASSET_MARKS = ("last_reading_at", "last_window_end_ms", "last_score", "ingest_seq")
@@ -206,7 +226,7 @@ def insert_scores(conn: Connection, rows: list[dict[str, Any]]) -> None:
 
 
 def recent_scores(conn: Connection, *, asset_id: str, model_id: str, model_version: str, before_index: int, limit: int) -> list[float]:
-    """The last `limit` stored scores before window end `before_index`, oldest first."""
+    """The last `limit` stored scores the rule saw before window end `before_index`, oldest first."""
     params = {"asset_id": asset_id, "model_id": model_id, "model_version": model_version, "before_index": before_index, "limit": limit}
     return [float(r[0]) for r in reversed(_stmt(conn, _recent_scores).rows(conn, params))]
 
@@ -221,7 +241,14 @@ def insert_alert(conn: Connection, values: dict[str, Any]) -> int:
 
 
 def save_alert(conn: Connection, alert: AlertRow) -> None:
-    _stmt(conn, _update_alert).execute(conn, {"alert_id": alert.id, **{c: getattr(alert, c) for c in _ALERT_COLS[1:]}})
+    """Write the columns the rule owns (never state, outcome or a person's close)."""
+    _stmt(conn, _update_alert).execute(conn, {"alert_id": alert.id, **{c: getattr(alert, c) for c in _RULE_COLS}})
+    alert.dirty = False
+
+
+def save_returned(conn: Connection, alert: AlertRow) -> None:
+    """Write a return to normal: the rule's columns, the condition, and the freed active slot."""
+    _stmt(conn, _return_alert).execute(conn, {"alert_id": alert.id, **{c: getattr(alert, c) for c in _RULE_COLS + _RETURN_COLS}})
     alert.dirty = False
 
 

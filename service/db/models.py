@@ -13,6 +13,7 @@ from typing import Any
 from sqlalchemy import (
     JSON,
     BigInteger,
+    Boolean,
     DateTime,
     Float,
     ForeignKey,
@@ -23,6 +24,8 @@ from sqlalchemy import (
     Text,
     UniqueConstraint,
 )
+from sqlalchemy import false as sa_false
+from sqlalchemy import true as sa_true
 from sqlalchemy.engine import Dialect
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 from sqlalchemy.types import TypeDecorator
@@ -139,6 +142,9 @@ class WindowScore(Base):
     contributions: Mapped[dict[str, Any]] = mapped_column(JSON)  # {channel: share}, shares sum to 1
     threshold_version_id: Mapped[int | None] = mapped_column(ForeignKey("threshold_versions.id"), default=None)
     created_at: Mapped[datetime] = mapped_column(default=utcnow)
+    # Streaming core (service/stream.py): False for a late window filling a hole behind the
+    # rule's last window; the rule's state is rebuilt only from windows it saw.
+    rule_saw: Mapped[bool] = mapped_column(Boolean, default=True, server_default=sa_true())
 
 
 class SkippedWindow(Base):
@@ -211,6 +217,8 @@ class Alert(Base):
     closed_by: Mapped[str | None] = mapped_column(String(128), default=None)
     outcome: Mapped[str | None] = mapped_column(String(32), default=None)
     close_note: Mapped[str | None] = mapped_column(Text, default=None)
+    # Backfill (service/stream.py, issue 12): opened by a backfill of history; sends no notification.
+    backfilled: Mapped[bool] = mapped_column(Boolean, default=False, server_default=sa_false())
 
 
 class AlertEvent(Base):

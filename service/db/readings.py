@@ -11,7 +11,7 @@ from functools import cache
 from datetime import datetime, timezone
 from typing import Any
 
-from sqlalchemy import Integer, Select, bindparam, delete, func, insert, select
+from sqlalchemy import Integer, Select, and_, bindparam, delete, func, insert, or_, select
 from sqlalchemy.orm import Session
 
 from service.db.models import Alert, Asset, Reading, SkippedWindow, ThresholdVersion, WindowScore
@@ -96,9 +96,9 @@ def create_asset(session: Session, *, asset_id: str, model_id: str) -> Asset:
 
 
 def latest_threshold(session: Session, *, asset_id: str) -> ThresholdVersion | None:
-    return session.scalars(
-        select(ThresholdVersion).where(ThresholdVersion.asset_id == asset_id).order_by(ThresholdVersion.version.desc()).limit(1)
-    ).first()
+    from service.db.thresholds import threshold_in_force  # the one query (that module imports this one's neighbours)
+
+    return threshold_in_force(session, asset_id=asset_id)
 
 
 def add_threshold_version(
@@ -213,6 +213,7 @@ class ScorePoint:
     model_id: str
     model_version: str
     threshold_version_id: int | None
+    id: int = 0  # the row's key: with window_end_ms, the page order and the cursor
 
 
 def asset_scores(
@@ -221,20 +222,24 @@ def asset_scores(
     asset_id: str,
     since: datetime,
     until: datetime,
-    after_index: int | None = None,
+    after: tuple[int, int] | None = None,
     limit: int = 2000,
 ) -> list[ScorePoint]:
-    """Window scores with since <= window end < until, oldest first (keyset after `after_index`)."""
+    """Window scores with since <= window end < until, oldest first, ordered by (window end,
+    row id) — several model versions may score one window — and keyset-paged on the same
+    pair: `after` is the (window_end_ms, id) of the last row of the previous page."""
     q = select(WindowScore).where(
         WindowScore.asset_id == asset_id,
         WindowScore.window_end_ms >= dt_to_ms(since),
         WindowScore.window_end_ms < dt_to_ms(until),
     )
-    if after_index is not None:
-        q = q.where(WindowScore.window_end_index > after_index)
+    if after is not None:
+        ms, row_id = after
+        q = q.where(or_(WindowScore.window_end_ms > ms, and_(WindowScore.window_end_ms == ms, WindowScore.id > row_id)))
     q = q.order_by(WindowScore.window_end_ms, WindowScore.id).limit(limit)
     return [
-        ScorePoint(ms_to_dt(r.window_end_ms), r.window_end_index, r.score, r.contributions, r.model_id, r.model_version, r.threshold_version_id)
+        ScorePoint(ms_to_dt(r.window_end_ms), r.window_end_index, r.score, r.contributions, r.model_id, r.model_version,
+                   r.threshold_version_id, r.id)
         for r in session.scalars(q)
     ]
 

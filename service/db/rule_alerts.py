@@ -23,18 +23,20 @@ RULE_ACTOR = "rule"
 def open_alert(
     conn: Connection, *, asset_id: str, severity: str, at: datetime, score: float, top_channels: list[dict[str, Any]],
     model_id: str, model_version: str, threshold_version_id: int | None, details: dict[str, Any],
+    backfilled: bool = False,
 ) -> AlertRow:
-    """Insert the asset's active alert. The UNIQUE active_key makes a concurrent second one fail."""
+    """Insert the asset's active alert. The UNIQUE active_key makes a concurrent second one fail.
+    `backfilled`: opened by a backfill of history (it sends no notification)."""
     alert_id = store.insert_alert(conn, {
         "asset_id": asset_id, "severity": severity, "state": "unacknowledged", "condition": "active",
         "active_key": asset_id, "opened_at": at, "last_seen_at": at, "returned_at": None,
         "peak_score": float(score), "peak_at": at, "top_channels": top_channels,
         "model_id": model_id, "model_version": model_version, "threshold_version_id": threshold_version_id,
         "acknowledged_at": None, "acknowledged_by": None, "closed_at": None, "closed_by": None,
-        "outcome": None, "close_note": None,
+        "outcome": None, "close_note": None, "backfilled": backfilled,
     })
     store.insert_event(conn, alert_id=alert_id, at=at, kind="opened", actor=RULE_ACTOR, details={"severity": severity, **details})
-    alert = AlertRow(alert_id, severity, at, float(score), at, top_channels, active_key=asset_id)
+    alert = AlertRow(alert_id, severity, at, float(score), at, top_channels, active_key=asset_id, backfilled=backfilled)
     outbox.enqueue_transition(conn, "opened", alert, at=at, asset_id=asset_id)
     return alert
 
@@ -62,6 +64,6 @@ def return_alert(conn: Connection, alert: AlertRow, *, at: datetime, details: di
     alert.condition = "returned"
     alert.returned_at = at
     alert.active_key = None
-    store.save_alert(conn, alert)
+    store.save_returned(conn, alert)
     store.insert_event(conn, alert_id=alert.id, at=at, kind="returned", actor=RULE_ACTOR, details=details)
     outbox.enqueue_transition(conn, "returned", alert, at=at)

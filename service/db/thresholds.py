@@ -24,7 +24,7 @@ from sqlalchemy import Select, bindparam, func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from service.alerting import AlertRule
+from service.alerting import AlertRule, manifest_rule, rule_of
 from service.db.alerts import to_ms
 from service.db.models import Alert, Asset, AuditLog, ThresholdVersion, WindowScore
 from service.errors import BadInput, Conflict, NotFound
@@ -43,10 +43,17 @@ def get_asset(session: Session, *, asset_id: str, for_update: bool = False) -> A
     return asset
 
 
+def in_force_select(*columns: Any) -> Select[Any]:
+    """The one query for the threshold version in force: the asset's highest version
+    (bind `asset_id`). Ingest compiles it with the columns it needs (service/db/ingest_sql.py)."""
+    t = ThresholdVersion
+    return select(*(columns or (t,))).where(t.asset_id == bindparam("asset_id")).order_by(t.version.desc()).limit(1)
+
+
 @cache
 def _in_force() -> Select[Any]:
-    # Built once and reused: every ingest request asks (service/db/readings.py says why).
-    return select(ThresholdVersion).where(ThresholdVersion.asset_id == bindparam("asset_id")).order_by(ThresholdVersion.version.desc()).limit(1)
+    # Built once and reused (service/db/readings.py says why).
+    return in_force_select()
 
 
 def threshold_in_force(session: Session, *, asset_id: str) -> ThresholdVersion | None:
@@ -59,22 +66,6 @@ def threshold_history(session: Session, *, asset_id: str) -> list[ThresholdVersi
     return list(
         session.scalars(select(ThresholdVersion).where(ThresholdVersion.asset_id == asset_id).order_by(ThresholdVersion.version.desc()))
     )
-
-
-def rule_of(version: ThresholdVersion) -> AlertRule:
-    return AlertRule(
-        warning=version.warning,
-        critical=version.critical,
-        on_k=version.on_k,
-        on_n=version.on_n,
-        off_m=version.off_m,
-        deadband_frac=version.deadband_frac,
-    )
-
-
-def manifest_rule(manifest: Manifest) -> AlertRule:
-    t, r = manifest.thresholds, manifest.alert_rule
-    return AlertRule(t.warning, t.critical, r.on_k, r.on_n, r.off_m, r.deadband_frac)
 
 
 def ensure_initial_version(session: Session, *, asset: Asset, manifest: Manifest) -> ThresholdVersion:
@@ -199,7 +190,9 @@ def rollback(session: Session, *, asset: Asset, to_version: int, reason: str, ac
 
 def score_series(session: Session, *, asset_id: str, model_id: str, since: datetime, until: datetime) -> ScoreSeries:
     """The asset's stored window scores of `model_id` with window ends in [since, until), in
-    window-end order; where two model versions scored the same window, the newer counts."""
+    window-end order; where two model versions scored the same window, the newer counts. Only
+    windows the live rule saw (service/stream.py: not a late window filling a hole behind it),
+    so the preview replays what the rule replayed."""
     rows = session.execute(
         select(WindowScore.window_end_ms, WindowScore.score, WindowScore.model_version)
         .where(
@@ -207,6 +200,7 @@ def score_series(session: Session, *, asset_id: str, model_id: str, since: datet
             WindowScore.model_id == model_id,
             WindowScore.window_end_ms >= to_ms(since),
             WindowScore.window_end_ms < to_ms(until),
+            WindowScore.rule_saw.is_(True),
         )
         .order_by(WindowScore.window_end_ms)
     ).all()

@@ -10,7 +10,7 @@ from urllib.parse import urlencode
 
 from sqlalchemy.orm import Session
 
-from service.alerting import AlertRule
+from service.alerting import AlertRule, rule_of
 from service.actions import PREVIEW_DEFAULT, preview_change
 from service.db import alerts as alert_q
 from service.db import readings as readings_q
@@ -329,7 +329,7 @@ def threshold_page(
         raise NotFound(f"asset {asset_id!r} has no threshold version yet: it gets one with its first readings")
     model = loaded_model(registry, asset.model_id)
     cal = calibration_of(model)
-    current_rule = threshold_q.rule_of(cur)
+    current_rule = rule_of(cur)
     now = datetime.now(timezone.utc)
     last_ms = asset.last_window_end_ms
     # The same stretch the preview endpoint replays by default: up to the newest stored window.

@@ -65,21 +65,57 @@ def test_different_value_for_stored_timestamp_is_409_and_stores_nothing(env) -> 
     assert counts(env) == before  # the four new readings of that batch were not stored either
 
 
-def test_out_of_order_batches_score_the_same_windows_once(env) -> None:
-    """Posting shuffled batches (within the lateness limit) ends with exactly the windows and
-    scores that one in-order post gives."""
-    steps = list(range(40))
-    devs = {i: (2.5 if 14 <= i < 22 else 0.3 * np.sin(i)) for i in steps}
-    in_order = [reading(i, devs[i]) for i in steps]
-    env.post("pump-01", in_order)
-    chunks = [in_order[i : i + 5] for i in range(0, 40, 5)]
-    random.Random(3).shuffle(chunks)
-    for c in chunks:
-        assert env.post("pump-02", c).status_code == 200
-    a = env.rows("SELECT window_end_index, round(score, 5) FROM window_scores WHERE asset_id='pump-01' ORDER BY 1")
-    b = env.rows("SELECT window_end_index, round(score, 5) FROM window_scores WHERE asset_id='pump-02' ORDER BY 1")
-    assert a == b and len(a) == 17  # ends 6, 8, ..., 38
-    assert env.count("skipped_windows") == 0
+def test_out_of_order_batches_within_the_hold_score_what_one_in_order_post_scores(tmp_path, tiny_dir) -> None:
+    """Shuffled batches whose readings arrive at most `hold_steps` out of order end with
+    exactly the windows and scores of one in-order post (service/stream.py)."""
+    from service_env import start_env
+
+    gen = start_env(tmp_path, tiny_dir, hold_steps=40)
+    env = next(gen)
+    try:
+        steps = list(range(80))
+        devs = {i: (2.5 if 14 <= i < 22 else 0.3 * np.sin(i)) for i in steps}
+        in_order = [reading(i, devs[i]) for i in steps]
+        env.post("pump-01", in_order)
+        chunks = [in_order[i : i + 5] for i in range(0, 40, 5)]
+        random.Random(3).shuffle(chunks)
+        for c in [*chunks, in_order[40:]]:
+            assert env.post("pump-02", c).status_code == 200
+        a = env.rows("SELECT window_end_index, round(score, 5) FROM window_scores WHERE asset_id='pump-01' ORDER BY 1")
+        b = env.rows("SELECT window_end_index, round(score, 5) FROM window_scores WHERE asset_id='pump-02' ORDER BY 1")
+        assert a == b and len(a) == 17  # ends 6, 8, ..., 38: a window waits until the newest reading is 40 steps past it
+        assert env.count("skipped_windows") == 0
+    finally:
+        gen.close()
+
+
+def test_windows_do_not_depend_on_where_a_batch_is_cut(env) -> None:
+    """Grid steps 0-9 then 11-20 score the window ending at 10 (formed from step 9's value
+    filled forward), exactly as one post of the same rows does; before the streaming core the
+    second batch looked for due windows only from its first reading, and the window was lost."""
+    rows = readings([*range(10), *range(11, 21)])
+    one = env.post("pump-01", rows).json()
+    first = env.post("pump-02", rows[:10]).json()
+    second = env.post("pump-02", rows[10:]).json()
+    a = env.rows("SELECT window_end_index, round(score, 6) FROM window_scores WHERE asset_id='pump-01' ORDER BY 1")
+    b = env.rows("SELECT window_end_index, round(score, 6) FROM window_scores WHERE asset_id='pump-02' ORDER BY 1")
+    assert a == b
+    assert [e - BASE_IDX for e, _ in a] == [6, 8, 10, 12, 14, 16, 18, 20]
+    assert one["windows_scored"] == first["windows_scored"] + second["windows_scored"] == 8
+
+
+def test_an_outage_posted_in_two_batches_keeps_its_windows_and_gap_records(env) -> None:
+    """Steps 0-11, an outage 12-17, then 18-40: one post, or the same rows cut at the outage,
+    give the same scored windows (12: steps 12-13 filled from 11) and gap records (14-22);
+    before the streaming core the second batch formed nothing before its first reading."""
+    rows = readings([*range(12), *range(18, 41)])
+    env.post("pump-01", rows)
+    env.post("pump-02", rows[:12])
+    env.post("pump-02", rows[12:])
+    for table in ("window_scores", "skipped_windows"):
+        a = env.rows(f"SELECT window_end_index FROM {table} WHERE asset_id='pump-01' ORDER BY 1")
+        b = env.rows(f"SELECT window_end_index FROM {table} WHERE asset_id='pump-02' ORDER BY 1")
+        assert a == b and a, table
 
 
 def test_late_reading_closes_a_gap_and_its_windows_are_scored(env) -> None:
@@ -228,6 +264,32 @@ def test_scores_endpoint_range_contributions_and_pages(env) -> None:
     assert env.client.get("/v1/assets/nope/scores", headers=h).status_code == 404
     bad = env.client.get("/v1/assets/pump-01/scores", params={"since": "2026-10-01T00:10:00"}, headers=h)
     assert bad.status_code == 422 and bad.json()["error"]["field"] == "query.since"
+
+
+def test_scores_pages_skip_no_row_when_two_model_versions_scored_the_same_windows(env) -> None:
+    """The page order is (window end, row id) and so is the cursor: with a second model
+    version's scores of the same windows, paging with any page size returns every row once.
+    (The cursor used to hold the window-end index alone and dropped the second version's row
+    of the window a page ended on.)"""
+    env.post("pump-01", readings(range(20)))
+    env.execute(
+        "INSERT INTO window_scores (asset_id, model_id, model_version, window_end_index, window_end_ms, score, contributions, "
+        "threshold_version_id, created_at, rule_saw) SELECT asset_id, model_id, '2', window_end_index, window_end_ms, score + 1, "
+        "contributions, threshold_version_id, created_at, rule_saw FROM window_scores"
+    )
+    h = env.auth("maintenance")
+    whole = env.client.get("/v1/assets/pump-01/scores", headers=h).json()["items"]
+    assert len(whole) == 14  # ends 6, 8, ..., 18, each by versions 1 and 2
+    for size in (1, 2, 3, 5):
+        got, cursor = [], None
+        while True:
+            params = {"limit": size, **({"cursor": cursor} if cursor else {})}
+            page = env.client.get("/v1/assets/pump-01/scores", params=params, headers=h).json()
+            got += page["items"]
+            cursor = page["next_cursor"]
+            if not cursor:
+                break
+        assert got == whole, size
 
 
 def test_score_endpoint_scores_and_stores_nothing(env) -> None:
