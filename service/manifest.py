@@ -25,7 +25,8 @@ OUTPUT_NAMES = ("reconstruction", "residual", "score")
 
 MergeMode = Literal["concat", "sum", "multiply", "average"]
 ScoreMethod = Literal["mean_squared", "mahalanobis"]
-ThresholdMethod = Literal["empirical", "pot", "manual"]
+# Spelled out in service.thresholds.METHOD_LABELS.
+ThresholdMethod = Literal["empirical", "pot", "highest_normal", "spaced", "manual"]
 
 
 class _Strict(BaseModel):
@@ -104,12 +105,26 @@ class Thresholds(_Strict):
     warning_budget_per_week: float | None = Field(default=None, ge=0, description="false alerts per asset-week")
     critical_budget_per_week: float | None = Field(default=None, ge=0)
     calibration: CalibrationSummary
+    # How each level was found (issue 12); None in manifests written before these fields.
+    warning_method: ThresholdMethod | None = None
+    critical_method: ThresholdMethod | None = None
 
     @model_validator(mode="after")
     def _ordered(self) -> Thresholds:
         if self.critical < self.warning:
             raise ValueError("critical threshold must be >= warning threshold")
         return self
+
+
+class Provisional(_Strict):
+    """Why a model's levels are provisional: what they rest on and what would settle them."""
+
+    reason: str
+    calibration_windows: int = Field(ge=0)
+    calibration_asset_days: float = Field(ge=0)
+    windows_needed: int = Field(ge=0, description="calibration windows a tail fit needs")
+    asset_days_needed: float = Field(ge=0, description="calibration asset-days a tail fit needs")
+    advice: str = Field(description="what normal history to add, in plain words")
 
 
 class AlertRuleDefaults(_Strict):
@@ -169,6 +184,8 @@ class Manifest(_Strict):
     onnx_file: str = ONNX_FILE
     onnx_sha256: str = Field(pattern=r"^[0-9a-f]{64}$")
     calibration_file: str = CALIBRATION_FILE
+    # Issue 12: set when the thresholds rest on too little calibration data; None otherwise.
+    provisional: Provisional | None = None
 
     @field_validator("created_at")
     @classmethod

@@ -33,7 +33,7 @@ from service.alerting import AlertRule, replay
 from service.grid import Grid, align, cut_windows, fill_gaps, window_ends
 from service.manifest import Manifest, load_calibration, load_manifest
 from service.scoring import OnnxScorer
-from service.thresholds import CalibrationSet, threshold_for_budget
+from service.thresholds import CalibrationSet, method_label, threshold_for_budget
 from training.baselines import BASELINE_NAMES, Baseline, Scaling, fit_baselines, score_windows
 from training.metrics import (
     DEFAULT_IGNORE_KINDS,
@@ -531,7 +531,7 @@ def describe(ev: Evaluation) -> str:
         f"planned work (maintenance) is neither fault nor false alarm; "
         f"F1 = window-level, score >= warning, no point adjustment; F1 (PA) = point-adjusted, shown only beside it",
         "thresholds: "
-        + ", ".join(f"{r.name} {r.warning:.4g} ({r.threshold_method})" for r in ev.rows())
+        + ", ".join(f"{r.name} {r.warning:.4g} ({method_label(r.threshold_method)})" for r in ev.rows())
         + (f"; budget {ev.budget_per_week:g} false alerts per asset-week" if ev.budget_per_week is not None else ""),
     ]
     return "\n".join(lines + ev.notes)

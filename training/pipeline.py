@@ -17,7 +17,8 @@ import numpy as np
 import torch
 
 from service import grid as G
-from service.manifest import Channel, GapPolicy, Manifest, Scaler, TrainingSummary, ValidationFigures
+from service.thresholds import method_label
+from service.manifest import Channel, GapPolicy, Manifest, Provisional, Scaler, TrainingSummary, ValidationFigures
 from training.calibrate import Calibration, calibrate, fit_mahalanobis, model_outputs, score_windows
 from training.config import TrainConfig
 from training.dataset import ArrayWindows, Prepared, prepare_with
@@ -116,11 +117,21 @@ def separation(
     return out, fault_scores
 
 
+def _log_calibration(cal: Calibration, provisional: Provisional | None, log: Log) -> None:
+    """The levels with their methods spelled out, what they rest on and, if provisional, what to add."""
+    for line in cal.describe().splitlines():
+        log(line)
+    if provisional is not None:
+        log(f"PROVISIONAL model: {provisional.reason}.")
+        log(f"To settle the levels: {provisional.advice}.")
+
+
 def _threshold_detail(cal: Calibration) -> dict[str, dict]:
     out = {}
     for level, choice in (("warning", cal.warning), ("critical", cal.critical)):
         out[level] = {
             "method": choice.method,
+            "method_label": method_label(choice.method),
             "budget_per_week": choice.budget_per_week,
             "expected_per_week": choice.expected_per_week,
             "level_chosen": choice.threshold,
@@ -203,10 +214,8 @@ def train_logs(
     cal = calibrate(
         model, parts["calibration"], prepared.span_s("calibration"), period_window_s, config.calibration, list(prepared.assets)
     )
-    log(
-        f"thresholds: warning {cal.rule.warning:.4g} ({cal.warning.method}), "
-        f"critical {cal.rule.critical:.4g} ({cal.critical.method})"
-    )
+    provisional = cal.provisional(d.fractions[2])
+    _log_calibration(cal, provisional, log)
     cal_scores = cal.pooled
     figures: dict[str, float] = {
         "train_windows_per_s": result.windows_per_s,
@@ -266,6 +275,7 @@ def train_logs(
                 extra={k: float(v) for k, v in figures.items() if np.isfinite(v) and k not in TIMING_FIGURES},
             ),
             onnx_sha256=onnx_sha256,
+            provisional=provisional,
         )
 
     examples = _examples(model, prepared, cal_scores, faulty, fault_scores)
