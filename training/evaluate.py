@@ -552,12 +552,25 @@ def busiest_asset(ev: Evaluation) -> str:
     return max(ev.assets, key=lambda a: (counts.get(a, 0), a == ev.assets[0]))
 
 
+def time_axis(ax) -> None:  # type: ignore[no-untyped-def]
+    """A UTC date axis whose ticks suit the span: hours within a day, days across weeks.
+
+    A fixed month-day format labelled every tick of a one-day plot with the same date;
+    matplotlib's concise formatter names the date once and the hours beside it.
+    """
+    import matplotlib.dates as mdates
+
+    locator = mdates.AutoDateLocator(minticks=4, maxticks=10)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+    ax.set_xlabel("UTC")
+
+
 def plot(ev: Evaluation, events: Sequence[EventLike], path: Path, asset: str | None = None) -> str:
     """PNG of one asset: each detector's score over time with its threshold, faults and alerts."""
     import matplotlib
 
     matplotlib.use("Agg")
-    import matplotlib.dates as mdates
     import matplotlib.pyplot as plt
 
     asset = asset or busiest_asset(ev)
@@ -591,8 +604,7 @@ def plot(ev: Evaluation, events: Sequence[EventLike], path: Path, asset: str | N
     for e in faults:
         axes[-1, 0].annotate(e.kind, (to_dt(round(max(e.start_s, lo))), 0.02), xycoords=("data", "axes fraction"), fontsize=6, rotation=90, va="bottom")
     axes[-1, 0].set_xlim(to_dt(round(lo)), to_dt(round(hi)))
-    axes[-1, 0].xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
-    axes[-1, 0].set_xlabel("UTC")
+    time_axis(axes[-1, 0])
     fig.tight_layout()
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
