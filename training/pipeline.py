@@ -204,7 +204,10 @@ def train_logs(
         progress=progress,
         on_epoch=lambda e, tr, va: log(f"epoch {e}: train loss {tr:.5f}, validation loss {va:.5f}"),
     )
-    log(f"fit: {result.epochs_run} epochs in {result.seconds:.0f} s, kept epoch {result.best_epoch}")
+    log(
+        f"fit: {result.epochs_run} epochs in {result.seconds:.0f} s ({result.windows_per_s:.0f} windows/s, "
+        f"{result.precision}), kept epoch {result.best_epoch}"
+    )
     if mc.score == "mahalanobis":
         steps = fit_mahalanobis(model, parts["validation"], mc)
         log(f"Mahalanobis error statistics fitted on {steps} validation steps")
@@ -289,7 +292,7 @@ def train_logs(
         threshold_detail=_threshold_detail(cal),
         examples=examples,
         figures=figures,
-        settings=config.as_dict(),
+        settings={**config.as_dict(), "precision_used": result.precision},
     )
     real = parts["validation"].gather(even_subset(len(parts["validation"]), PARITY_REAL_WINDOWS))
     manifest, parity = write_model_folder(
