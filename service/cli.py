@@ -10,7 +10,7 @@ from collections.abc import Sequence
 
 # Modules exposing `register(subparsers)`; each must import only argparse-level things at
 # module scope (training.commands imports torch inside its handlers).
-COMMAND_MODULES = ("service.commands", "service.ops_commands", "service.notify_commands", "training.commands", "training.evaluate_commands", "training.data_commands")
+COMMAND_MODULES = ("service.commands", "service.ops_commands", "service.notify_commands", "service.export_commands", "training.commands", "training.evaluate_commands", "training.data_commands")
 
 
 class CommandError(Exception):

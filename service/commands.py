@@ -65,12 +65,12 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def _settings():  # noqa: ANN202 - pydantic-settings validation errors become CommandError
     from pydantic import ValidationError
 
-    from service.settings import load_settings
+    from service.settings import load_settings, settings_error_text
 
     try:
         return load_settings()
     except ValidationError as e:
-        raise CommandError(f"settings: {e}") from e
+        raise CommandError(f"settings: {settings_error_text(e)}") from e
 
 
 def _private_metrics_dir() -> tuple[str, str | None]:

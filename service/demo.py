@@ -124,7 +124,7 @@ def run_demo(*, folder: Path, port: int | None = None) -> int:
         keys = {role: _create_key(env, role) for role in DEMO_ROLES}
 
         now_s = time.time()
-        start_s = (now_s // 60) * 60 - 86400.0
+        start_s = demo_data.recent_start(1.0, now_s)
         day = demo_data.demo_day(start=start_s)
         print(f"demo day {_iso(day.start_s)} .. {_iso(day.start_s + 86400)} for {', '.join(day.assets)}; faults:", file=sys.stderr)
         for ev in day.events:

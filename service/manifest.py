@@ -27,7 +27,8 @@ OUTPUT_NAMES = ("reconstruction", "residual", "score")
 
 MergeMode = Literal["concat", "sum", "multiply", "average"]
 ScoreMethod = Literal["mean_squared", "mahalanobis", "mahalanobis_bias"]
-ThresholdMethod = Literal["empirical", "pot", "manual"]
+# Spelled out in service.thresholds.METHOD_LABELS.
+ThresholdMethod = Literal["empirical", "pot", "highest_normal", "spaced", "manual"]
 
 
 class _Strict(BaseModel):
@@ -170,12 +171,26 @@ class Thresholds(_Strict):
     warning_budget_per_week: float | None = Field(default=None, ge=0, description="false alerts per asset-week")
     critical_budget_per_week: float | None = Field(default=None, ge=0)
     calibration: CalibrationSummary
+    # How each level was found (issue 12); None in manifests written before these fields.
+    warning_method: ThresholdMethod | None = None
+    critical_method: ThresholdMethod | None = None
 
     @model_validator(mode="after")
     def _ordered(self) -> Thresholds:
         if self.critical < self.warning:
             raise ValueError("critical threshold must be >= warning threshold")
         return self
+
+
+class Provisional(_Strict):
+    """Why a model's levels are provisional: what they rest on and what would settle them."""
+
+    reason: str
+    calibration_windows: int = Field(ge=0)
+    calibration_asset_days: float = Field(ge=0)
+    windows_needed: int = Field(ge=0, description="calibration windows a tail fit needs")
+    asset_days_needed: float = Field(ge=0, description="calibration asset-days a tail fit needs")
+    advice: str = Field(description="what normal history to add, in plain words")
 
 
 class AlertRuleDefaults(_Strict):
@@ -247,6 +262,8 @@ class Manifest(_Strict):
             scaler = data["scaler"] if isinstance(data["scaler"], Scaler) else Scaler.model_validate(data["scaler"])
             data = {**data, "plausible": plausible_limits(scaler.center, scaler.scale)}
         return data
+    # Issue 12: set when the thresholds rest on too little calibration data; None otherwise.
+    provisional: Provisional | None = None
 
     @field_validator("created_at")
     @classmethod

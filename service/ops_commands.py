@@ -35,12 +35,12 @@ def cmd_db_backup(args: argparse.Namespace) -> int:
     from pydantic import ValidationError
 
     from service.backup import BackupError, backup_sqlite
-    from service.settings import load_settings
+    from service.settings import load_settings, settings_error_text
 
     try:
         settings = load_settings()
     except ValidationError as e:
-        raise CommandError(f"settings: {e}") from e
+        raise CommandError(f"settings: {settings_error_text(e)}") from e
     try:
         result = backup_sqlite(settings.database_url, args.to, overwrite=args.overwrite)
     except BackupError as e:

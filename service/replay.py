@@ -93,55 +93,76 @@ class ReplaySummary:
 
 
 def read_file(path: Path) -> tuple[tuple[str, ...], dict[str, AssetSeries]]:
-    """(channels, per-asset series) from a readings file (CSV or Parquet, wide or long layout).
+    """(channels, per-asset series) from a readings CSV, wide or long layout (README, "Prepare data").
 
-    Uses training.logs when it is installed (the trainer half); otherwise reads the wide CSV
-    layout (`timestamp,asset,<channel>...`) itself.
+    One parser wherever replay runs: the standard library's csv module (the service image has
+    no pyarrow, and a replay must not read a file differently depending on what else is
+    installed). Columns are found by name: `timestamp` and `asset`, then either `channel`
+    and `value` (long layout; an optional `unit` column is ignored) or one column per channel
+    (wide). Parquet is refused with a message: write the readings as CSV to replay them.
     """
     path = Path(path)
     if not path.is_file():
         raise ReplayError(f"{path}: no such file")
-    try:
-        from training.logs import DataError, read_logs
-    except ImportError:
-        return _read_wide_csv(path)
-    try:
-        logs = read_logs(path)
-    except DataError as e:
-        raise ReplayError(str(e)) from e
-    return logs.channels, {a: AssetSeries(log.times_s, log.values) for a, log in logs.assets.items()}
+    if path.suffix.lower() in (".parquet", ".pq"):
+        raise ReplayError(f"{path}: replay reads CSV only (the service's own parser, no pyarrow); write the readings as CSV")
+    return _read_csv(path)
 
 
-def _read_wide_csv(path: Path) -> tuple[tuple[str, ...], dict[str, AssetSeries]]:
+def _read_csv(path: Path) -> tuple[tuple[str, ...], dict[str, AssetSeries]]:
     with open(path, newline="", encoding="utf-8") as f:
         reader = csv.reader(f)
         try:
-            header = next(reader)
+            header = [h.strip() for h in next(reader)]
         except StopIteration:
             raise ReplayError(f"{path}: empty file") from None
-        if len(header) < 3 or header[0] != "timestamp" or header[1] != "asset":
-            raise ReplayError(f"{path}: line 1 must be `timestamp,asset,<channel>,...` (the wide layout)")
-        channels = tuple(header[2:])
-        rows: dict[str, list[tuple[float, list[float]]]] = {}
+        missing = [c for c in ("timestamp", "asset") if c not in header]
+        if missing:
+            raise ReplayError(
+                f"{path}: line 1 has no {' or '.join(repr(c) for c in missing)} column: give `timestamp,asset,<channel>,...` "
+                "(wide) or `timestamp,asset,channel,value[,unit]` (long)"
+            )
+        t_col, a_col = header.index("timestamp"), header.index("asset")
+        long = "channel" in header and "value" in header
+        if long:
+            c_col, v_col = header.index("channel"), header.index("value")
+            channels: list[str] = []
+            value_cols: list[tuple[str, int]] = [("value", v_col)]
+        else:
+            channels = [h for i, h in enumerate(header) if i not in (t_col, a_col)]
+            if not channels:
+                raise ReplayError(f"{path}: line 1 names no channel column")
+            value_cols = [(h, i) for i, h in enumerate(header) if i not in (t_col, a_col)]
+        rows: dict[str, dict[float, dict[str, float]]] = {}
         for line_no, row in enumerate(reader, start=2):
+            if not row:
+                continue
             if len(row) != len(header):
                 raise ReplayError(f"{path}: line {line_no} has {len(row)} fields, the header has {len(header)}")
             try:
-                ts = parse_timestamp(row[0])
+                ts = parse_timestamp(row[t_col])
             except TimestampError as e:
                 raise ReplayError(f"{path}: line {line_no}, column timestamp: {e}") from e
-            vals = []
-            for name, cell in zip(channels, row[2:]):
+            point = rows.setdefault(row[a_col], {}).setdefault(ts, {})
+            for name, i in value_cols:
+                cell = row[i].strip()
                 try:
-                    vals.append(float(cell) if cell.strip() else math.nan)
+                    value = float(cell) if cell else math.nan
                 except ValueError:
-                    raise ReplayError(f"{path}: line {line_no}, column {name}: {cell!r} is not a number") from None
-            rows.setdefault(row[1], []).append((ts, vals))
+                    raise ReplayError(f"{path}: line {line_no}, column {name}: {row[i]!r} is not a number") from None
+                if long:
+                    channel = row[c_col].strip()
+                    if channel not in channels:
+                        channels.append(channel)
+                    point[channel] = value
+                else:
+                    point[name] = value
     out = {}
-    for asset, items in sorted(rows.items()):
-        items.sort(key=lambda r: r[0])
-        out[asset] = AssetSeries(np.array([t for t, _ in items]), np.array([v for _, v in items], dtype=np.float64))
-    return channels, out
+    for asset, points in sorted(rows.items()):
+        times = sorted(points)
+        values = np.array([[points[t].get(c, math.nan) for c in channels] for t in times], dtype=np.float64)
+        out[asset] = AssetSeries(np.array(times, dtype=np.float64), values.reshape(len(times), len(channels)))
+    return tuple(channels), out
 
 
 def _batches(series: Mapping[str, AssetSeries], batch: int) -> list[tuple[float, str, int, int]]:

@@ -15,6 +15,13 @@ generalized Pareto distribution (shape gamma, scale sigma); for a per-window ris
 with n scores and N_t peaks. The budget maps to a per-window risk conservatively: an
 alert needs at least on_k windows over the threshold, so at most exceedances / on_k
 alerts open, and q = budget * on_k / windows_per_week keeps the alert rate within budget.
+
+Too little data for either (fewer than MIN_TAIL_PEAKS scores above the initial threshold):
+the level is set just above the highest normal calibration score ("highest_normal"), the
+highest level the data can defend without extrapolating a tail it has not seen; replaying
+the calibration scores then opens no alert, and all the data can say of the false-alarm
+rate is that it is below one per calibration stretch. The trainer marks such a model
+provisional (training/calibrate.py) and says how much more normal history it needs.
 """
 
 from __future__ import annotations
@@ -31,6 +38,44 @@ WEEK_S = 7 * 86400.0
 MIN_RESOLVABLE_ALERTS = 3.0  # below this many allowed alerts the empirical count is too coarse
 POT_INITIAL_QUANTILE = 0.98  # Siffer et al. 2017 use the 98% quantile in their experiments
 MAX_CANDIDATES = 4000
+# Common practice (from memory): a generalized Pareto fit on fewer than ~30 excesses is too
+# uncertain to extrapolate from; below it the level falls back to the highest normal score.
+MIN_TAIL_PEAKS = 30
+
+# What each threshold method means, spelled out for people (CLI, report, dashboard). The
+# codes stay short in the manifest and the API.
+METHOD_LABELS: dict[str, str] = {
+    "empirical": "alerts counted on the calibration replay",
+    "pot": "peaks-over-threshold tail fit (generalized Pareto)",
+    "highest_normal": "highest normal calibration score (too little data for a tail fit)",
+    "spaced": "warning level plus the spread of normal scores",
+    "manual": "set by hand",
+}
+
+
+def method_label(method: str) -> str:
+    """The spelled-out name of a threshold method code."""
+    return METHOD_LABELS.get(method, method)
+
+
+def calibrated_reason(method: str, provisional: bool = False) -> str:
+    """The threshold history's reason for a model's own levels (version 1 of an asset)."""
+    text = f"calibrated by the trainer: {method_label(method)}"
+    return text + ("; provisional model, too little calibration data" if provisional else "")
+
+
+def tail_peaks(scores: np.ndarray, initial_quantile: float = POT_INITIAL_QUANTILE) -> int:
+    """How many scores lie above their `initial_quantile` (the excesses a tail fit would use)."""
+    s = np.asarray(scores, dtype=np.float64)
+    s = s[np.isfinite(s)]
+    if len(s) == 0:
+        return 0
+    return int(np.count_nonzero(s > np.quantile(s, initial_quantile)))
+
+
+def windows_for_tail_fit(initial_quantile: float = POT_INITIAL_QUANTILE) -> int:
+    """Calibration windows needed for MIN_TAIL_PEAKS excesses above the initial quantile."""
+    return int(np.ceil(MIN_TAIL_PEAKS / (1.0 - initial_quantile)))
 
 
 @dataclass(frozen=True)
@@ -168,7 +213,7 @@ def alerts_per_week(cal: CalibrationSet, rule: AlertRule) -> float:
 @dataclass(frozen=True)
 class ThresholdChoice:
     threshold: float
-    method: Literal["empirical", "pot"]
+    method: Literal["empirical", "pot", "highest_normal", "spaced"]
     budget_per_week: float
     expected_per_week: float
     detail: dict[str, float] = field(default_factory=dict)
@@ -206,6 +251,17 @@ def threshold_for_budget(cal: CalibrationSet, rule: AlertRule, budget_per_week: 
                 lo = mid + 1
         level = float(cands[lo])
         return ThresholdChoice(level, "empirical", budget_per_week, alerts_per_week(cal, _level_rule(rule, level)))
+    peaks = tail_peaks(pooled)
+    if peaks < MIN_TAIL_PEAKS:
+        top = float(np.max(pooled))
+        level = top * (1 + 1e-6) if top > 0 else 1e-6
+        return ThresholdChoice(
+            level,
+            "highest_normal",
+            budget_per_week,
+            1.0 / cal.weeks if cal.weeks > 0 else float("inf"),  # an upper bound: no alert in the stretch
+            {"n": float(len(pooled)), "n_peaks": float(peaks), "min_peaks": float(MIN_TAIL_PEAKS)},
+        )
     fit = fit_tail(pooled)
     q = min(budget_per_week * rule.on_k / cal.windows_per_week, fit.n_peaks / fit.n)
     level = max(float(fit.quantile(q)), fit.t)

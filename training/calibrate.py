@@ -7,6 +7,17 @@ lowest one whose replay opens at most `warning_budget_per_week` alerts per asset
 the critical level likewise with its own (rarer) budget. Where a budget is rarer than
 the calibration stretch can resolve, threshold_for_budget fits the score tail by peaks
 over threshold (Siffer et al. 2017) instead; which one was used is recorded per level.
+
+Too little calibration data never stops a run (issue 12). The rule, in order:
+
+1. A level the tail fit cannot support (fewer than service.thresholds.MIN_TAIL_PEAKS
+   scores above the 98% quantile) is set just above the highest normal calibration
+   score: the highest level the data defends without extrapolating (threshold_for_budget).
+2. Critical is always strictly above warning: when its budget gives no higher level (both
+   fell back to the highest score, or the fitted tail ends below the warning), critical =
+   warning + (warning - median normal score), one "normal spread" above the warning.
+3. A model with any level from rule 1 is provisional: Calibration.provisional() says how
+   many windows and asset-days the levels rest on and how much normal history to add.
 """
 
 from __future__ import annotations
@@ -24,9 +35,19 @@ from service.manifest import (
     CalibrationScores,
     CalibrationSeries,
     CalibrationSummary,
+    Provisional,
     Thresholds,
 )
-from service.thresholds import CalibrationSet, ThresholdChoice, alerts_per_week, threshold_for_budget
+from service.thresholds import (
+    MIN_TAIL_PEAKS,
+    CalibrationSet,
+    ThresholdChoice,
+    alerts_per_week,
+    method_label,
+    tail_peaks,
+    threshold_for_budget,
+    windows_for_tail_fit,
+)
 from training.config import CalibrationConfig, ModelConfig
 from training.model import Reconstructor, error_statistics
 
@@ -112,8 +133,64 @@ class Calibration:
 
     @property
     def method(self) -> str:
-        """'pot' when either level came from the tail fit, else 'empirical'."""
-        return "pot" if "pot" in (self.warning.method, self.critical.method) else "empirical"
+        """The manifest's one-word method: the least supported of the two levels' methods."""
+        methods = (self.warning.method, self.critical.method)
+        for m in ("highest_normal", "pot"):
+            if m in methods:
+                return m
+        return "empirical"
+
+    @property
+    def is_provisional(self) -> bool:
+        return "highest_normal" in (self.warning.method, self.critical.method)
+
+    @property
+    def asset_days(self) -> float:
+        return self.span_s / 86400.0
+
+    def provisional(self, calibration_fraction: float) -> Provisional | None:
+        """What the levels rest on and what to add, when the data was too little for a tail fit.
+
+        `calibration_fraction` is the share of each asset's normal history held out for
+        calibration (the last part in time), so more history adds to it in that proportion.
+        """
+        if not self.is_provisional:
+            return None
+        have = int(len(self.pooled))
+        need = windows_for_tail_fit()
+        need_days = need * self.window_period_s / 86400.0
+        missing_days = max(need_days - self.asset_days, 0.0)
+        history_days = missing_days / calibration_fraction if calibration_fraction > 0 else float("inf")
+        n_assets = max(len(self.series), 1)
+        per_asset = history_days / n_assets
+        return Provisional(
+            reason=(
+                f"the thresholds rest on {have} normal calibration windows ({self.asset_days:.1f} asset-days on "
+                f"{len(self.series)} assets) with {tail_peaks(self.pooled)} scores above the 98% quantile; a "
+                f"peaks-over-threshold tail fit needs at least {MIN_TAIL_PEAKS} ({need} windows, "
+                f"{need_days:.1f} asset-days), so the warning level is set just above the highest normal score "
+                "and the false-alarm budgets are not shown to be met"
+            ),
+            calibration_windows=have,
+            calibration_asset_days=round(self.asset_days, 3),
+            windows_needed=need,
+            asset_days_needed=round(need_days, 3),
+            advice=(
+                f"add about {per_asset:.0f} more days of normal history per asset ({history_days:.0f} asset-days in all; "
+                f"calibration holds out the last {calibration_fraction:.0%} of each asset's normal data), or more assets "
+                "of the same kind, then train again"
+            ),
+        )
+
+    def describe(self) -> str:
+        """One line per level and one on the data, for the CLI."""
+        lines = [
+            f"warning level {self.rule.warning:.4g}: {method_label(self.warning.method)}",
+            f"critical level {self.rule.critical:.4g}: {method_label(self.critical.method)}",
+            f"calibration data: {len(self.pooled)} normal windows over {self.asset_days:.1f} asset-days on "
+            f"{len(self.series)} assets ({tail_peaks(self.pooled)} above the 98% quantile)",
+        ]
+        return "\n".join(lines)
 
     def replayed_per_week(self, level: str = "warning") -> float:
         """Alerts per asset-week the rule opens at the chosen warning (or critical) level."""
@@ -138,6 +215,8 @@ class Calibration:
             warning_budget_per_week=self.warning.budget_per_week,
             critical_budget_per_week=self.critical.budget_per_week,
             calibration=self.summary(),
+            warning_method=self.warning.method,
+            critical_method=self.critical.method,
         )
 
     def alert_rule_defaults(self) -> AlertRuleDefaults:
@@ -179,6 +258,20 @@ def per_asset_series(
     return out
 
 
+def spaced_critical(cal: CalibrationSet, warning: ThresholdChoice, budget_per_week: float) -> ThresholdChoice:
+    """Critical one normal spread above warning (rule 2 of the module docstring)."""
+    pooled = cal.pooled
+    spread = warning.threshold - float(np.median(pooled))
+    level = warning.threshold + max(spread, 1e-6 * max(warning.threshold, 1.0))
+    return ThresholdChoice(
+        level,
+        "spaced",
+        budget_per_week,
+        min(warning.expected_per_week, 1.0 / cal.weeks) if cal.weeks > 0 else warning.expected_per_week,
+        {"warning": warning.threshold, "median_normal": float(np.median(pooled))},
+    )
+
+
 def choose_thresholds(
     series: dict[str, tuple[np.ndarray, np.ndarray]],
     span_s: float,
@@ -194,8 +287,9 @@ def choose_thresholds(
     )
     warning = threshold_for_budget(cal, timing, config.warning_budget_per_week)
     critical = threshold_for_budget(cal, timing, config.critical_budget_per_week)
-    crit_level = max(critical.threshold, warning.threshold)
-    rule = timing.with_thresholds(warning.threshold, crit_level)
+    if not critical.threshold > warning.threshold:
+        critical = spaced_critical(cal, warning, critical.budget_per_week)
+    rule = timing.with_thresholds(warning.threshold, critical.threshold)
     return Calibration(
         rule=rule,
         warning=warning,

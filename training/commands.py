@@ -59,6 +59,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
     f.add_argument("--epoch-windows", type=int, default=_F.max_train_windows, help="training windows drawn per epoch (default: all)")
     f.add_argument("--seed", type=int, default=_F.seed, help=f"seed of weights and batch order (default {_F.seed})")
     f.add_argument("--threads", type=int, default=_F.threads, help=f"torch CPU threads (default {_F.threads})")
+    f.add_argument("--precision", choices=("auto", "float32", "bfloat16"), default=_F.precision, help="training arithmetic: auto = bfloat16 autocast where the CPU has it natively (AMX / AVX-512 BF16), else float32; the exported model is float32 either way (default float32: bfloat16 missed the 5 %% validation-loss criterion on one of two seeds, training/fit.py)")
 
     c = p.add_argument_group("thresholds")
     c.add_argument("--warning-budget", type=float, default=_C.warning_budget_per_week, help=f"false warnings per asset-week (default {_C.warning_budget_per_week:g}, about one a month)")
@@ -103,6 +104,7 @@ def config_from_args(args: argparse.Namespace):  # type: ignore[no-untyped-def]
             seed=args.seed,
             threads=args.threads,
             max_train_windows=args.epoch_windows,
+            precision=args.precision,
         )
         cal = CalibrationConfig(warning_budget_per_week=args.warning_budget, critical_budget_per_week=args.critical_budget)
         check_config(data, model, fit, cal)

@@ -105,6 +105,9 @@ class FitConfig:
     # there for an idle machine (not measured for the 64-wide model).
     threads: int = 1
     max_train_windows: int | None = None  # per epoch, a fixed-seed subsample (None = all)
+    # Issue 12, training speed (opt-in, see training/fit.py): "auto" = bfloat16 autocast where the CPU has native bfloat16
+    # (AMX / AVX-512 BF16), float32 otherwise; "float32" or "bfloat16" to force (training/fit.py).
+    precision: Literal["auto", "float32", "bfloat16"] = "float32"
     max_validation_windows: int = 4000  # validation loss on a fixed subset (all when fewer)
 
 

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import os
 import tempfile
+import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -620,6 +621,13 @@ def write(demo: DemoData, out_dir: str | os.PathLike[str]) -> tuple[Path, Path]:
     _write_atomic(readings, readings_csv_lines(demo))
     _write_atomic(events, events_csv_lines(demo.events))
     return readings, events
+
+
+def recent_start(days: float = 1.0, now_s: float | None = None) -> float:
+    """Start of a stretch of `days` that ends at the current minute (UTC): a demo replay of it
+    leaves the assets reporting, and no reading lies in the future."""
+    now = time.time() if now_s is None else float(now_s)
+    return float((now // PERIOD_S) * PERIOD_S - days * DAY_S)
 
 
 def demo_day(seed: int = DEFAULT_SEED, assets: int = DEFAULT_ASSETS, start: str | float | None = None) -> DemoData:

@@ -36,7 +36,7 @@ from service import stream
 from service.alerting import AlertRule, manifest_rule, replay
 from service.manifest import Manifest, load_calibration, load_manifest
 from service.scoring import OnnxScorer
-from service.thresholds import CalibrationSet, threshold_for_budget
+from service.thresholds import CalibrationSet, method_label, threshold_for_budget
 from training.baselines import BASELINE_NAMES, Baseline, Scaling, fit_baselines, score_windows
 from training.metrics import (
     DEFAULT_IGNORE_KINDS,
@@ -556,7 +556,7 @@ def describe(ev: Evaluation) -> str:
         f"planned work (maintenance) is neither fault nor false alarm; "
         f"F1 = window-level, score >= warning, no point adjustment; F1 (PA) = point-adjusted, shown only beside it",
         "thresholds: "
-        + ", ".join(f"{r.name} {r.warning:.4g} ({r.threshold_method})" for r in ev.rows())
+        + ", ".join(f"{r.name} {r.warning:.4g} ({method_label(r.threshold_method)})" for r in ev.rows())
         + (f"; budget {ev.budget_per_week:g} false alerts per asset-week" if ev.budget_per_week is not None else ""),
     ]
     return "\n".join(lines + ev.notes)
@@ -577,12 +577,25 @@ def busiest_asset(ev: Evaluation) -> str:
     return max(ev.assets, key=lambda a: (counts.get(a, 0), a == ev.assets[0]))
 
 
+def time_axis(ax) -> None:  # type: ignore[no-untyped-def]
+    """A UTC date axis whose ticks suit the span: hours within a day, days across weeks.
+
+    A fixed month-day format labelled every tick of a one-day plot with the same date;
+    matplotlib's concise formatter names the date once and the hours beside it.
+    """
+    import matplotlib.dates as mdates
+
+    locator = mdates.AutoDateLocator(minticks=4, maxticks=10)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+    ax.set_xlabel("UTC")
+
+
 def plot(ev: Evaluation, events: Sequence[EventLike], path: Path, asset: str | None = None) -> str:
     """PNG of one asset: each detector's score over time with its threshold, faults and alerts."""
     import matplotlib
 
     matplotlib.use("Agg")
-    import matplotlib.dates as mdates
     import matplotlib.pyplot as plt
 
     asset = asset or busiest_asset(ev)
@@ -616,8 +629,7 @@ def plot(ev: Evaluation, events: Sequence[EventLike], path: Path, asset: str | N
     for e in faults:
         axes[-1, 0].annotate(e.kind, (to_dt(round(max(e.start_s, lo))), 0.02), xycoords=("data", "axes fraction"), fontsize=6, rotation=90, va="bottom")
     axes[-1, 0].set_xlim(to_dt(round(lo)), to_dt(round(hi)))
-    axes[-1, 0].xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
-    axes[-1, 0].set_xlabel("UTC")
+    time_axis(axes[-1, 0])
     fig.tight_layout()
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)

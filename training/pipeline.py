@@ -17,7 +17,8 @@ import numpy as np
 import torch
 
 from service import grid as G
-from service.manifest import Channel, GapPolicy, Manifest, Scaler, TrainingSummary, ValidationFigures, plausible_limits
+from service.thresholds import method_label
+from service.manifest import Channel, GapPolicy, Manifest, Provisional, Scaler, TrainingSummary, ValidationFigures, plausible_limits
 from training.baseline_check import baseline_check
 from training.calibrate import Calibration, calibrate, fit_mahalanobis, model_outputs, score_windows
 from training.config import TrainConfig
@@ -117,11 +118,21 @@ def separation(
     return out, fault_scores
 
 
+def _log_calibration(cal: Calibration, provisional: Provisional | None, log: Log) -> None:
+    """The levels with their methods spelled out, what they rest on and, if provisional, what to add."""
+    for line in cal.describe().splitlines():
+        log(line)
+    if provisional is not None:
+        log(f"PROVISIONAL model: {provisional.reason}.")
+        log(f"To settle the levels: {provisional.advice}.")
+
+
 def _threshold_detail(cal: Calibration) -> dict[str, dict]:
     out = {}
     for level, choice in (("warning", cal.warning), ("critical", cal.critical)):
         out[level] = {
             "method": choice.method,
+            "method_label": method_label(choice.method),
             "budget_per_week": choice.budget_per_week,
             "expected_per_week": choice.expected_per_week,
             "level_chosen": choice.threshold,
@@ -202,7 +213,10 @@ def train_logs(
         progress=progress,
         on_epoch=lambda e, tr, va: log(f"epoch {e}: train loss {tr:.5f}, validation loss {va:.5f}"),
     )
-    log(f"fit: {result.epochs_run} epochs in {result.seconds:.0f} s, kept epoch {result.best_epoch}")
+    log(
+        f"fit: {result.epochs_run} epochs in {result.seconds:.0f} s ({result.windows_per_s:.0f} windows/s, "
+        f"{result.precision}), kept epoch {result.best_epoch}"
+    )
     if mc.score in ("mahalanobis", "mahalanobis_bias"):
         steps = fit_mahalanobis(model, parts["validation"], mc)
         log(f"Mahalanobis error statistics fitted on {steps} validation steps")
@@ -212,10 +226,8 @@ def train_logs(
     cal = calibrate(
         model, parts["calibration"], prepared.span_s("calibration"), period_window_s, config.calibration, list(prepared.assets)
     )
-    log(
-        f"thresholds: warning {cal.rule.warning:.4g} ({cal.warning.method}), "
-        f"critical {cal.rule.critical:.4g} ({cal.critical.method})"
-    )
+    provisional = cal.provisional(d.fractions[2])
+    _log_calibration(cal, provisional, log)
     cal_scores = cal.pooled
     figures: dict[str, float] = {
         "train_windows_per_s": result.windows_per_s,
@@ -296,6 +308,7 @@ def train_logs(
             ),
             onnx_sha256=onnx_sha256,
             plausible=plausible,
+            provisional=provisional,
         )
 
     examples = _examples(model, prepared, cal_scores, faulty, fault_scores)
@@ -309,7 +322,7 @@ def train_logs(
         threshold_detail=_threshold_detail(cal),
         examples=examples,
         figures=figures,
-        settings=config.as_dict(),
+        settings={**config.as_dict(), "precision_used": result.precision},
         baseline_check=check,
     )
     real = parts["validation"].gather(even_subset(len(parts["validation"]), PARITY_REAL_WINDOWS))

@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from service.manifest import Manifest
+from service.thresholds import METHOD_LABELS, MIN_TAIL_PEAKS, method_label
 
 REPORT_DIR = "report"
 
@@ -133,6 +134,7 @@ def write_report(folder: Path, manifest: Manifest, inputs: ReportInputs) -> Path
         "val_loss": inputs.val_loss,
         "thresholds": {"warning": inputs.warning, "critical": inputs.critical, "detail": inputs.threshold_detail},
         "calibration": manifest.thresholds.calibration.model_dump(),
+        "provisional": manifest.provisional.model_dump() if manifest.provisional is not None else None,
         "parameters": manifest.architecture.parameters,
         "flops_per_window": manifest.architecture.flops_per_window,
         "onnx_max_abs_error": manifest.validation.onnx_max_abs_error,
@@ -148,8 +150,6 @@ def write_report(folder: Path, manifest: Manifest, inputs: ReportInputs) -> Path
 
 
 def _markdown(manifest: Manifest, inputs: ReportInputs, example_files: list[tuple[str, Example]]) -> str:
-    t = manifest.thresholds
-    cal = t.calibration
     lines = [
         f"# Training report: {manifest.model_id} version {manifest.version}",
         "",
@@ -169,26 +169,7 @@ def _markdown(manifest: Manifest, inputs: ReportInputs, example_files: list[tupl
         "",
         "## Thresholds",
         "",
-        f"Score method: {manifest.score.method}. Calibration: {cal.windows} normal windows over "
-        f"{cal.span_s / 86400:.1f} asset-days on {cal.assets} assets.",
-        "",
-        "| level | threshold | method | budget (alerts / asset-week) | expected on normal data |",
-        "|---|---|---|---|---|",
-    ]
-    for level, value in (("warning", t.warning), ("critical", t.critical)):
-        d = inputs.threshold_detail.get(level, {})
-        lines.append(
-            f"| {level} | {value:.5g} | {d.get('method', '?')} | {d.get('budget_per_week', float('nan')):g} | "
-            f"{d.get('expected_per_week', float('nan')):.3g} |"
-        )
-    lines += [
-        "",
-        "`empirical`: the calibration scores replayed through the alert rule show the budget directly; "
-        "`pot`: the budget is rarer than the calibration stretch can show, so the score tail was fitted "
-        "by peaks over threshold (Siffer et al. 2017).",
-        f"Alert rule: open on {manifest.alert_rule.on_k} of {manifest.alert_rule.on_n} windows, return after "
-        f"{manifest.alert_rule.off_m} windows below threshold x (1 - {manifest.alert_rule.deadband_frac:g}).",
-        "",
+        *_threshold_lines(manifest, inputs),
         "![calibration](calibration.png)",
         "",
     ]
@@ -226,4 +207,61 @@ def _baseline_section(inputs: ReportInputs) -> list[str]:
             f"{s.pca_roc_auc:.3f} | {'yes' if s.baseline_as_good else 'no'} |"
         )
     lines += ["", ("**" + verdict + "**") if check.baseline_as_good else verdict, ""]  # type: ignore[attr-defined]
+    return lines
+
+
+def _threshold_lines(manifest: Manifest, inputs: ReportInputs) -> list[str]:
+    """The thresholds section: what the levels rest on, how each was set, and, for a
+    provisional model, why and what to add (issue 12: calibration never fails silently)."""
+    t = manifest.thresholds
+    cal = t.calibration
+    lines = [
+        f"Score method: {manifest.score.method}. The levels rest on {cal.windows} normal calibration windows "
+        f"over {cal.span_s / 86400:.1f} asset-days on {cal.assets} assets.",
+        "",
+    ]
+    p = manifest.provisional
+    if p is not None:
+        lines += [
+            "**Provisional model.** " + p.reason[0].upper() + p.reason[1:] + ".",
+            f"To settle the levels: {p.advice}.",
+            "Until then the expected false-alarm figures below are upper bounds (no alert in the calibration "
+            "stretch), not a budget met.",
+            "",
+        ]
+    lines += [
+        "| level | threshold | how it was set | budget (alerts / asset-week) | expected on normal data |",
+        "|---|---|---|---|---|",
+    ]
+    used: list[str] = []
+    for level, value in (("warning", t.warning), ("critical", t.critical)):
+        d = inputs.threshold_detail.get(level, {})
+        method = str(d.get("method", "?"))
+        used.append(method)
+        expected = float(d.get("expected_per_week", float("nan")))
+        bounded = method in ("highest_normal", "spaced") and p is not None
+        lines.append(
+            f"| {level} | {value:.5g} | {method_label(method)} | {d.get('budget_per_week', float('nan')):g} | "
+            + (f"below {expected:.3g} (not shown) |" if bounded else f"{expected:.3g} |")
+        )
+    explain = {
+        "empirical": "the calibration scores replayed through the alert rule show the budget directly",
+        "pot": "the budget is rarer than the calibration stretch can show, so the score tail above its 98% "
+        "quantile was fitted with a generalized Pareto distribution (peaks over threshold, Siffer et al. 2017)",
+        "highest_normal": f"fewer than {MIN_TAIL_PEAKS} scores lie above the 98% quantile, too few for a tail fit, "
+        "so the level sits just above the highest normal score seen: the replay opens no alert, and the data "
+        "can only say the false-alarm rate is below one per calibration stretch",
+        "spaced": "the critical budget gave no level above the warning, so critical = warning + "
+        "(warning - median normal score), keeping critical strictly above warning",
+    }
+    lines.append("")
+    for method in dict.fromkeys(used):
+        if method in explain:
+            lines.append(f"- {METHOD_LABELS[method]}: {explain[method]}.")
+    lines += [
+        "",
+        f"Alert rule: open on {manifest.alert_rule.on_k} of {manifest.alert_rule.on_n} windows, return after "
+        f"{manifest.alert_rule.off_m} windows below threshold x (1 - {manifest.alert_rule.deadband_frac:g}).",
+        "",
+    ]
     return lines

@@ -47,6 +47,7 @@ def _model_out(m: LoadedModel, registry: ModelRegistry, assets: dict[str, list[s
         warning=man.thresholds.warning,
         critical=man.thresholds.critical,
         threshold_method=man.thresholds.method,
+        provisional=man.provisional.reason if man.provisional is not None else None,
         alert_rule=RuleTiming(**man.alert_rule.model_dump()),
         score_method=man.score.method,
         onnx_sha256=man.onnx_sha256,

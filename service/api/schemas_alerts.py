@@ -204,7 +204,7 @@ class WouldOpenOut(BaseModel):
 
 class BudgetOut(BaseModel):
     false_alarms_per_week: float
-    method: Literal["empirical", "pot"]
+    method: Literal["empirical", "pot", "highest_normal", "spaced"] = Field(description="how the level was found: service.thresholds.METHOD_LABELS")
     detail: dict[str, float]
 
 
@@ -295,6 +295,7 @@ class ModelOut(BaseModel):
     warning: float
     critical: float
     threshold_method: str
+    provisional: str | None = Field(default=None, description="why the thresholds are provisional (too little calibration data), else null")
     alert_rule: RuleTiming
     score_method: str
     onnx_sha256: str

@@ -45,6 +45,7 @@ from service.errors import BadInput
 from service.models_registry import LoadedModel, ModelRegistry
 from service.retune import TIMING_FIELDS, PastAlert, Preview, Proposal, ProposedAlert, calibration_set, preview, propose_rule
 from service.retune_risk import MIN_HISTORY_DAYS, MIN_RISKY_REASON, ConfirmationMissing, RetuneRisk, assess, check_confirmation
+from service.thresholds import calibrated_reason
 
 router = APIRouter(prefix="/v1/assets/{asset_id}", tags=["thresholds"])
 
@@ -77,7 +78,7 @@ def _in_force(db: DbSession, asset: Asset, model: LoadedModel) -> ThresholdVersi
         deadband_frac=rule.deadband_frac,
         origin="calibrated",
         budget_per_week=model.manifest.thresholds.warning_budget_per_week,
-        reason=f"calibrated by the trainer ({model.manifest.thresholds.method})",
+        reason=calibrated_reason(model.manifest.thresholds.method, model.manifest.provisional is not None),
         created_by=f"model {model.model_id}/{model.version}",
         created_at=asset.created_at,
         model_id=model.model_id,

@@ -31,6 +31,7 @@ from service.errors import BadInput, Conflict, NotFound
 from service.manifest import Manifest
 from service.models_registry import version_key
 from service.retune import TIMING_FIELDS, PastAlert, ScoreSeries
+from service.thresholds import calibrated_reason
 
 MAX_SHELVE = timedelta(days=30)
 
@@ -80,7 +81,7 @@ def ensure_initial_version(session: Session, *, asset: Asset, manifest: Manifest
         rule=rule,
         origin="calibrated",
         budget_per_week=manifest.thresholds.warning_budget_per_week,
-        reason=f"calibrated by the trainer ({manifest.thresholds.method})",
+        reason=calibrated_reason(manifest.thresholds.method, manifest.provisional is not None),
         created_by=f"model {manifest.model_id}/{manifest.version}",
         manifest=manifest,
         audit=False,

@@ -36,6 +36,12 @@ def loaded_model(registry: ModelRegistry, model_id: str) -> LoadedModel | None:
         return None
 
 
+def provisional_note(model: LoadedModel | None) -> str | None:
+    """Why the served model's levels are provisional (shown beside the model), or None."""
+    p = model.manifest.provisional if model is not None else None
+    return f"Provisional thresholds: {p.reason}. {p.advice[0].upper() + p.advice[1:]}." if p is not None else None
+
+
 def units_of(model: LoadedModel | None) -> dict[str, str]:
     return {c.name: c.unit for c in model.manifest.channels} if model else {}
 
@@ -172,6 +178,7 @@ def alert_live(detail: alert_q.AlertDetail, model: LoadedModel | None) -> dict[s
             "levels": levels,
             "on_delay": f"{th.on_k} of {th.on_n}" if th else "enough",
             "model": f"{a.model_id} / {a.model_version}",
+            "model_provisional": provisional_note(model) if model is not None and model.version == a.model_version else None,
             "outcome": a.outcome,
             "outcome_label": views.OUTCOME_LABELS.get(a.outcome or "", a.outcome),
             "close_note": a.close_note,

@@ -457,6 +457,7 @@ def assets_page(request: Request) -> Response:
                 "over": ratio is not None and ratio >= 1,
                 "meter_pct": min(100, round(100 * (ratio or 0) / 2)),  # full bar = twice the warning level
                 "model": s.model_id,
+                "model_provisional": pages.provisional_note(pages.loaded_model(request.app.state.registry, s.model_id)),
                 "alert_id": s.active_alert_id,
                 "alert_severity": s.active_severity,
             }

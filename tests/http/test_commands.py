@@ -143,3 +143,30 @@ def test_replay_speed_paces_batches_by_data_time(env) -> None:
     assert len(waits) == 3
     assert all(0 < w <= k for k, w in enumerate(waits, start=1))
     assert all(0 < b - a <= 1.0 for a, b in zip(waits, waits[1:]))
+
+
+def test_replay_reads_long_csv_like_wide_with_its_own_parser(tmp_path: Path) -> None:
+    """One parser for replay (stdlib csv) wherever it runs: long and wide layouts agree, Parquet is refused."""
+    import sys
+
+    wide = tmp_path / "wide.csv"
+    wide.write_text("timestamp,asset,a_kpa,b_c\n2026-10-01T00:01:00Z,p2,1.5,\n2026-10-01T00:00:00Z,p1,2,3\n")
+    long = tmp_path / "long.csv"
+    long.write_text(
+        "asset,timestamp,channel,value,unit\np2,2026-10-01T00:01:00Z,a_kpa,1.5,kPa\np1,2026-10-01T00:00:00Z,a_kpa,2,kPa\n"
+        "p1,2026-10-01T00:00:00Z,b_c,3,degC\n"
+    )
+    before = set(sys.modules)
+    cw, sw = read_file(wide)
+    cl, sl = read_file(long)
+    assert not any(m.startswith(("training", "pyarrow")) for m in set(sys.modules) - before)
+    assert cw == cl == ("a_kpa", "b_c") and set(sw) == set(sl) == {"p1", "p2"}
+    for a in sw:
+        np.testing.assert_array_equal(sw[a].times_s, sl[a].times_s)
+        np.testing.assert_array_equal(sw[a].values, sl[a].values)  # NaN where p2 has no b_c
+    (tmp_path / "r.parquet").write_bytes(b"PAR1")
+    with pytest.raises(ReplayError, match="replay reads CSV only"):
+        read_file(tmp_path / "r.parquet")
+    (tmp_path / "bad.csv").write_text("time,asset,x\n")
+    with pytest.raises(ReplayError, match="no 'timestamp' column"):
+        read_file(tmp_path / "bad.csv")

@@ -293,3 +293,41 @@ def test_alert_health_and_notification_pages(env: Env) -> None:
     assert [(k, st in ("pending", "sending")) for k, st in env.rows("SELECT kind, status FROM notify_outbox")] == [("test", True)]
     r = env.client.post(f"/notify/routes/{route_id}/test", data={"csrf_token": "forged"}, follow_redirects=False)
     assert r.status_code == 403 and env.count("notify_outbox", "1 = 1") == 1
+
+
+def test_a_provisional_model_is_marked_where_the_model_is_shown(tmp_path: Any) -> None:
+    """Issue 12: a model calibrated on too little data says so on the dashboard and in /v1/models."""
+    from service_env import start_env
+
+    note = {
+        "reason": "the thresholds rest on 187 normal calibration windows (1.3 asset-days on 2 assets)",
+        "calibration_windows": 187,
+        "calibration_asset_days": 1.3,
+        "windows_needed": 1500,
+        "asset_days_needed": 10.4,
+        "advice": "add about 30 more days of normal history per asset",
+    }
+    tiny_model.build(tmp_path / "models", provisional=note)
+    gen = start_env(tmp_path, tmp_path / "models")
+    env = next(gen)
+    try:
+        alert_id = open_alert(env)
+        sign_in(env, "maintenance")
+        assets = env.client.get("/assets").text
+        assert "state-provisional" in assets and "1.3 asset-days" in assets
+        detail = env.client.get(f"/alerts/{alert_id}").text
+        assert ">provisional<" in detail and "Add about 30 more days of normal history per asset" in detail
+        models = env.client.get("/v1/models", headers={"Authorization": f"Bearer {env.keys['admin']}"}).json()
+        assert models["items"][0]["provisional"] == note["reason"]
+        sign_in(env, "operator")
+        history = env.client.get("/assets/pump-01/thresholds").text
+        assert "calibrated by the trainer: set by hand; provisional model, too little calibration data" in history
+    finally:
+        gen.close()
+
+
+def test_a_model_with_enough_data_shows_no_provisional_mark(env: Env) -> None:
+    alert_id = open_alert(env)
+    sign_in(env, "maintenance")
+    assert "state-provisional" not in env.client.get("/assets").text
+    assert ">provisional<" not in env.client.get(f"/alerts/{alert_id}").text

@@ -69,6 +69,7 @@ def build(
     off_m: int = 2,
     deadband_frac: float = 0.1,
     assets: tuple[str, ...] = ("pump-01", "pump-02"),
+    provisional: dict | None = None,
 ) -> Path:
     """Write <root>/<model_id>/<version>/ and return that folder."""
     folder = Path(root) / model_id / version
@@ -121,6 +122,8 @@ def build(
         "validation": {"val_loss": 0.0, "onnx_max_abs_error": 0.0, "onnx_score_rel_error": 0.0},
         "onnx_sha256": file_sha256(folder / ONNX_FILE),
     }
+    if provisional is not None:
+        manifest["provisional"] = provisional
     rng = np.random.default_rng(0)
     calib = {
         "model_id": model_id,

@@ -232,6 +232,27 @@ def test_cli_writes_the_files_and_reports_bad_options(tmp_path: Path, capsys: py
     ) + b"\n"
     assert main(["demo-data", "--out", str(tmp_path / "e"), "--assets", "0"]) == 2
     assert "assets must be 1..99" in capsys.readouterr().err
-    assert main(["demo-data", "--out", str(tmp_path / "e"), "--start", "2026-09-01T00:00:00"]) == 2
-    assert "no UTC offset" in capsys.readouterr().err
+    assert main(["demo-data", "--out", str(tmp_path / "e"), "--start", "1 Oct 2026"]) == 2
+    assert "cannot be parsed" in capsys.readouterr().err
     assert not (tmp_path / "e").exists()
+
+
+def test_cli_reads_a_start_without_offset_as_utc(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """The invented district keeps UTC: a date or a naive time is UTC (it used to ask for a zone it had no option for)."""
+    for start in ("2026-10-01", "2026-10-01T00:00:00"):
+        assert main(["demo-data", "--out", str(tmp_path / "d"), "--assets", "1", "--days", "0.1", "--start", start]) == 0
+        first = (tmp_path / "d" / "readings.csv").read_text().splitlines()[1]
+        assert first.startswith("2026-10-01T00:00:") and first.split(",")[0].endswith("Z")
+    capsys.readouterr()
+
+
+def test_cli_demo_day_ends_at_the_current_minute(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """So that after a replay the assets read as reporting, not silent for weeks."""
+    import time
+
+    assert main(["demo-data", "--out", str(tmp_path / "d"), "--assets", "1", "--scenario", "demo_day"]) == 0
+    last = (tmp_path / "d" / "readings.csv").read_text().splitlines()[-1].split(",")[0]
+    from service.grid import parse_timestamp
+
+    assert 0 < time.time() - parse_timestamp(last) < 600
+    capsys.readouterr()

@@ -199,3 +199,24 @@ def test_a_looser_budget_lowers_the_level(setup: Setup) -> None:
     assert high(loose) >= high(default)
     # The critical level keeps its ratio to the warning level.
     assert loose.model.critical / loose.model.warning == pytest.approx(m.thresholds.critical / m.thresholds.warning)
+
+
+@pytest.mark.parametrize("days", [1.0, 8.0])
+def test_the_plot_date_axis_labels_distinct_ticks(days: float) -> None:
+    """A one-day plot used to label every tick with the same month-day."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from training.evaluate import time_axis
+
+    t0 = np.datetime64("2026-10-05T00:00:00")
+    t = (t0 + np.arange(0, int(days * 86400), 600).astype("timedelta64[s]")).astype("datetime64[ms]").astype(object)
+    fig, ax = plt.subplots()
+    ax.plot(t, np.arange(len(t)))
+    time_axis(ax)
+    fig.canvas.draw()
+    labels = [x.get_text() for x in ax.get_xticklabels() if x.get_text()]
+    plt.close(fig)
+    assert len(labels) >= 3 and len(set(labels)) == len(labels)
