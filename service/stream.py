@@ -32,13 +32,16 @@ stored outcome is the same as posting its readings one at a time in arrival orde
   before (in formation order); a late window filling a hole behind that point is stored
   with `rule_saw` false and never moves the rule, and the rule's state is rebuilt only from
   windows it saw, so a later batch sees the same state whatever came before it.
-* Backfill (`backfill=True`): the batch's own readings set the newest mark (stored newer
-  readings do not make its windows due early, so history posted in time order, in batches
-  of any size, forms each window from all of its readings), there is no lateness limit, and
-  windows already scored are skipped, which makes resending a backfill change nothing.
-  Readings of the batch that are already stored (duplicates) still move its newest mark, so
-  a backfill that runs one window span into the stored history also forms the windows
-  across the seam between the two.
+* Backfill (`backfill=True`): the batch forms every window ending from its oldest to
+  `hold_steps` before its newest timestamp that is not scored yet, from every reading
+  stored once the batch is; stored newer readings do not make its windows due early, so
+  history posted in time order, in batches of any size, forms each window from all of its
+  readings. There is no lateness limit, and windows already scored are skipped, which
+  makes resending a backfill change nothing. Readings of the batch already stored
+  (duplicates) count in its span, so a backfill that runs one window span into the stored
+  history also forms the windows across the seam between the two. Alerts come from the
+  backfilled windows the rule sees (newer than every window it saw: a new asset's history,
+  or history after its newest window); older backfilled windows are stored but open none.
 """
 
 from __future__ import annotations
