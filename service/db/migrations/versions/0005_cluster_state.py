@@ -1,7 +1,7 @@
 """cluster state: model bindings, polled counters, cluster secrets, dashboard sessions, failed authentications
 
 Revision ID: 0005
-Revises: 0004
+Revises: 0003
 Create Date: 2026-12-03
 
 What several workers and replicas must agree on lives in the database (issue 11): the
@@ -19,7 +19,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision: str = '0005'
-down_revision: str | None = '0004'
+down_revision: str | None = '0003'
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 
