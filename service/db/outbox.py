@@ -16,7 +16,7 @@ Guarantees, and where each comes from:
   (`backoff_delay`); after `max_attempts`, or on an answer that retrying cannot change
   (a 4xx other than 408/429), it is dead-lettered (status "dead") and kept for admins.
 
-Alerts opened by a backfill (an alert row with `backfilled` true) send nothing: they tell
+Alerts opened by a backfill (`AlertRow.backfilled`, tests/http/test_backfill.py) send nothing: they tell
 of the past, not of something to go and look at now.
 """
 
@@ -94,7 +94,7 @@ def payload_for(kind: str, *, alert_id: int, asset_id: str, severity: str, at: d
 def enqueue_transition(conn: Connection, kind: str, alert: Any, *, at: datetime, asset_id: str | None = None) -> int:
     """Queue one message per matching route for an alert transition, on the transition's own
     connection (so both commit together). `alert` is the rule's AlertRow; returns how many."""
-    if getattr(alert, "backfilled", False):
+    if alert.backfilled:
         return 0
     if asset_id is None:
         asset_id = conn.execute(select(Alert.asset_id).where(Alert.id == alert.id)).scalar_one()

@@ -55,6 +55,11 @@ def test_a_backfill_of_demo_history_opens_the_alerts_evaluate_finds(tmp_path) ->
                 assert r.json()["error"]["field"] == "query.backfill" and "admin key" in r.json()["error"]["message"]
         assert env.count("readings") == 0
 
+        # A route that wants every transition: a backfill's alerts must still queue nothing (issue 14).
+        from service.db import outbox
+
+        with env.client.app.state.db.transaction() as s:
+            outbox.add_route(s, name="desk-hook", channel="webhook", target="http://127.0.0.1:9/hook", actor="test")
         first = _post_file(env, series, channels, key=env.keys["admin"], sizes=[500, 1440, 2000], seed=1)
         assert sum(a["late"] for a in first) == 0
         got = {}
@@ -63,6 +68,7 @@ def test_a_backfill_of_demo_history_opens_the_alerts_evaluate_finds(tmp_path) ->
             assert all(a["backfilled"] for a in items)
             got[asset] = sorted((_s(a["opened_at"]), _s(a["returned_at"] or a["last_seen_at"])) for a in items)
         assert got == {a: expected.get(a, []) for a in series}
+        assert env.count("alerts") >= 2 and env.count("notify_outbox") == 0, "backfilled alerts queued notifications"
 
         # Idempotent: the same backfill again, cut differently, changes nothing.
         before = {t: env.count(t) for t in ("readings", "window_scores", "skipped_windows", "alerts", "alert_events")}
