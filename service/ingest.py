@@ -90,7 +90,7 @@ from service.db.ingest_sql import AssetRow, ThresholdRow
 from service.db.models import Asset, SkippedWindow
 from service.db.session import Database
 from service.db.bindings import ensure_threshold
-from service.errors import BadInput, Conflict, Forbidden, TooLarge
+from service.errors import BadInput, Conflict, Forbidden, ModelSwitched, TooLarge
 from service.metrics import Metrics
 from service.models_registry import LoadedModel, ModelRegistry
 from service.scoring import first_implausible, implausible_message
@@ -262,7 +262,21 @@ def resolve_model(registry: ModelRegistry, asset: Asset | None, asset_id: str, *
     return registry.get(model_id)
 
 
-def ingest(
+def ingest(**kwargs: Any) -> IngestResult:
+    """Store one batch of an asset's readings (keyword arguments as `_ingest_once`).
+
+    When the cluster switched the asset's model while this process planned with the old
+    one, nothing was stored (ModelSwitched, service/db/bindings.py); the batch is planned
+    once more with the model the database now names, so the machine sees no 503 for a
+    switch it could not know about. A second switch within that retry is answered 503."""
+    try:
+        return _ingest_once(**kwargs)
+    except ModelSwitched:
+        log.info("model switched while planning a batch for %s; planning it again", kwargs.get("asset_id"))
+        return _ingest_once(**kwargs)
+
+
+def _ingest_once(
     *,
     db: Database,
     registry: ModelRegistry,
