@@ -15,12 +15,13 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Annotated, Any
 from urllib.parse import urlencode
 
-from fastapi import APIRouter, Form, Query, Request
+from fastapi import APIRouter, Depends, Form, Query, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from jinja2 import Environment, FileSystemLoader, select_autoescape
 from pydantic import ValidationError
@@ -274,9 +275,16 @@ def signout(request: Request, csrf_token: Annotated[str | None, Form(alias=CSRF_
 # --------------------------------------------------------------------------- alerts
 
 
-@router.get("/alerts", response_class=HTMLResponse)
-def alerts_page(
-    request: Request,
+@dataclass(frozen=True)
+class ListQuery:
+    """The alert list's filters, page and order as the page and its live refresh take them."""
+
+    filters: dict[str, str]
+    cursor: str | None
+    sort: str
+
+
+def list_query(
     asset: Annotated[str | None, Query(max_length=64)] = None,
     state: Annotated[str | None, Query(max_length=32)] = None,
     severity: Annotated[str | None, Query(max_length=32)] = None,
@@ -284,13 +292,22 @@ def alerts_page(
     until: Annotated[str | None, Query(max_length=40)] = None,
     cursor: Annotated[str | None, Query(max_length=200)] = None,
     sort: Annotated[str | None, Query(max_length=16)] = None,
-) -> Response:
+) -> ListQuery:
+    filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
+    return ListQuery(filters, cursor, sort or "priority")
+
+
+def _alert_list(db: Session, user: WebUser, query: ListQuery) -> dict[str, Any]:
+    return pages.alert_list(db, user=user, filters=query.filters, cursor=query.cursor, page_size=PAGE_SIZE, sort=query.sort)
+
+
+@router.get("/alerts", response_class=HTMLResponse)
+def alerts_page(request: Request, query: Annotated[ListQuery, Depends(list_query)]) -> Response:
     user, refused = _guard(request)
     if refused is not None or user is None:
         return refused  # type: ignore[return-value]
-    filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
     with _read_session(request) as db:
-        context = pages.alert_list(db, user=user, filters=filters, cursor=cursor, page_size=PAGE_SIZE, sort=sort or "priority")
+        context = _alert_list(db, user, query)
     context.update(_live(request), live_src="/alerts/live" + (f"?{request.url.query}" if request.url.query else ""))
     return _render(request, "alerts.html", context, user=user)
 
@@ -317,23 +334,13 @@ def _live_refused(user: WebUser | None) -> JSONResponse:
 
 
 @router.get("/alerts/live")
-def alerts_live(
-    request: Request,
-    asset: Annotated[str | None, Query(max_length=64)] = None,
-    state: Annotated[str | None, Query(max_length=32)] = None,
-    severity: Annotated[str | None, Query(max_length=32)] = None,
-    since: Annotated[str | None, Query(max_length=40)] = None,
-    until: Annotated[str | None, Query(max_length=40)] = None,
-    cursor: Annotated[str | None, Query(max_length=200)] = None,
-    sort: Annotated[str | None, Query(max_length=16)] = None,
-) -> Response:
+def alerts_live(request: Request, query: Annotated[ListQuery, Depends(list_query)]) -> Response:
     """The alert list's rows and counts, for the page to refresh itself without a reload."""
     user = current_user(request)
     if user is None or not user.can("maintenance"):
         return _live_refused(user)
-    filters = {"asset": asset or "", "state": state or "", "severity": severity or "", "since": since or "", "until": until or ""}
     with _read_session(request) as db:
-        context = pages.alert_list(db, user=user, filters=filters, cursor=cursor, page_size=PAGE_SIZE, sort=sort or "priority")
+        context = _alert_list(db, user, query)
     return _live_parts(request, {"live-tallies": "_alert_tallies.html", "live-table": "_alert_table.html"}, context, user)
 
 
