@@ -49,25 +49,26 @@ class _Deadline:
         if not transport.is_closing():
             transport.close()
 
-
-class HeaderDeadlineH11Protocol(_Deadline, H11Protocol):
+    # Before the protocol class in the MRO: these run first and hand on with super().
     def connection_made(self, transport: Any) -> None:
-        super().connection_made(transport)
+        super().connection_made(transport)  # type: ignore[misc]
         self._arm_head_timer()
 
     def connection_lost(self, exc: Exception | None) -> None:
         self._cancel_head_timer()
-        super().connection_lost(exc)
+        super().connection_lost(exc)  # type: ignore[misc]
 
+    def on_response_complete(self) -> None:
+        super().on_response_complete()  # type: ignore[misc]
+        if not self.transport.is_closing():  # type: ignore[attr-defined]
+            self._arm_head_timer()
+
+
+class HeaderDeadlineH11Protocol(_Deadline, H11Protocol):
     def handle_events(self) -> None:
         super().handle_events()
         if self.cycle is not None and not self.cycle.response_complete:  # a new request's head was complete
             self._cancel_head_timer()
-
-    def on_response_complete(self) -> None:
-        super().on_response_complete()
-        if not self.transport.is_closing():
-            self._arm_head_timer()
 
 
 try:
@@ -77,21 +78,8 @@ except ImportError:  # httptools not installed: uvicorn's "auto" would pick h11 
 else:
 
     class HeaderDeadlineHttpToolsProtocol(_Deadline, HttpToolsProtocol):
-        def connection_made(self, transport: Any) -> None:
-            super().connection_made(transport)
-            self._arm_head_timer()
-
-        def connection_lost(self, exc: Exception | None) -> None:
-            self._cancel_head_timer()
-            super().connection_lost(exc)
-
         def on_headers_complete(self) -> None:
             self._cancel_head_timer()
             super().on_headers_complete()
-
-        def on_response_complete(self) -> None:
-            super().on_response_complete()
-            if not self.transport.is_closing():
-                self._arm_head_timer()
 
     HeaderDeadlineProtocol = HeaderDeadlineHttpToolsProtocol
