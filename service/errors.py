@@ -125,14 +125,3 @@ def database_error(exc: BaseException) -> Unavailable:
     if is_busy(exc):
         return DatabaseBusy("the database is busy with other writes; nothing was stored, send the request again shortly")
     return DatabaseUnavailable("the database is unreachable or failing; retry shortly")
-
-
-def __getattr__(name: str) -> Any:
-    """The HTTP helpers lived here before the mapping moved to service/api/errors.py; code
-    that still imports them from here gets them from there (imported on first use, so this
-    module itself stays free of the web framework)."""
-    if name in ("error_response", "install_error_handlers", "field_path", "http_status"):
-        from service.api import errors as http_errors
-
-        return getattr(http_errors, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -24,7 +24,7 @@ from typing import Any
 import anyio.to_thread
 
 from service.db import auth_failures
-from service.errors import error_response
+from service.api.errors import error_response
 
 
 class FailedAuthLimit:
