@@ -31,6 +31,7 @@ from service.api.errors import error_response, install_error_handlers
 from service.metrics import Metrics
 from service.models_registry import ModelRegistry
 from service.api.docs import install_docs
+from service.background import in_thread_to_completion
 from service.settings import Settings
 
 log = logging.getLogger("kilter")
@@ -88,15 +89,8 @@ async def _retention_loop(app: FastAPI) -> None:
     settings: Settings = app.state.settings
     while True:
         cutoff = datetime.now(timezone.utc) - timedelta(days=settings.retention_days)
-        # The prune runs in a thread that holds a pooled connection; a shutdown that cancels
-        # this loop waits for it, so the pool is disposed only after the connection is back
-        # (one returned to a disposed pool is never closed).
-        job = asyncio.ensure_future(asyncio.to_thread(_prune_once, app.state.db, cutoff, prune))
         try:
-            removed = await asyncio.shield(job)
-        except asyncio.CancelledError:
-            await asyncio.wait([job])
-            raise
+            removed = await in_thread_to_completion(_prune_once, app.state.db, cutoff, prune)
         except Exception as e:  # keep serving; the next round retries
             log.warning("retention pruning failed: %s", e)
         else:

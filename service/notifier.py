@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from typing import Any
 
+from service.background import in_thread_to_completion
 from service.db import outbox
 from service.db.session import Database
 from service.notify_channels import DeliveryError, SmtpConfig, email_message, send_email, send_webhook
@@ -123,13 +124,9 @@ async def sender_loop(app: Any) -> None:
     settings: Settings = app.state.settings
     owner = new_owner()
     while True:
-        job = asyncio.ensure_future(asyncio.to_thread(run_once, app.state.db, settings, owner=owner))
         busy = False
         try:
-            result = await asyncio.shield(job)
-        except asyncio.CancelledError:
-            await asyncio.wait([job])
-            raise
+            result = await in_thread_to_completion(run_once, app.state.db, settings, owner=owner)
         except Exception as e:  # keep serving; the next round retries
             log.warning("notification round failed: %s", e)
         else:
