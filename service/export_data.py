@@ -37,6 +37,7 @@ from pathlib import Path
 from typing import Any
 
 from service.db import export as q
+from service.grid import iso_ms
 from service.db.models import Alert
 from service.db.session import Database
 from service.manifest import Manifest, load_manifest
@@ -83,13 +84,6 @@ class ExportSummary:
             f"exported {sum(self.readings.values())} readings of {len(self.assets)} assets "
             f"({', '.join(self.assets)}) and events: {kinds}; {self.false_alarms_kept} false alarms kept as normal"
         )
-
-
-def iso_ms(ts_ms: int) -> str:
-    """ISO-8601 UTC with Z; milliseconds only when there are any."""
-    dt = datetime.fromtimestamp(ts_ms / 1000, tz=timezone.utc)
-    text = dt.strftime("%Y-%m-%dT%H:%M:%S")
-    return text + (f".{ts_ms % 1000:03d}Z" if ts_ms % 1000 else "Z")
 
 
 def _to_ms(t: datetime) -> int:

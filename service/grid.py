@@ -66,6 +66,18 @@ def parse_timestamp(value: object, default_tz: str | tzinfo | None = None) -> fl
     return dt.astimezone(timezone.utc).timestamp()
 
 
+def iso_ms(ts_ms: int) -> str:
+    """Epoch milliseconds as ISO-8601 UTC with Z (`2026-10-13T09:00:00Z`); milliseconds only when there are any."""
+    ts_ms = int(ts_ms)
+    text = datetime.fromtimestamp(ts_ms // 1000, tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%S")
+    return text + (f".{ts_ms % 1000:03d}Z" if ts_ms % 1000 else "Z")
+
+
+def iso_s(ts_s: float) -> str:
+    """Epoch seconds as `iso_ms` writes them (rounded to the millisecond)."""
+    return iso_ms(int(round(ts_s * 1000)))
+
+
 def resolve_tz(tz: str | tzinfo) -> tzinfo:
     if isinstance(tz, tzinfo):
         return tz

@@ -80,6 +80,7 @@ from sqlalchemy import Connection
 from sqlalchemy.orm import Session
 
 from service import grid
+from service.grid import iso_ms, iso_s
 from service import stream
 from service.alerting import RuleState, manifest_rule, rule_of
 from service.caller import Caller
@@ -215,14 +216,6 @@ def check_retention(ts_ms: np.ndarray, *, now: datetime, retention_days: float) 
             f"so {len(old)} reading(s) of this batch are refused and nothing is stored",
             field=f"body.readings[{i}].ts",
         )
-
-
-def iso_s(ts_s: float) -> str:
-    return datetime.fromtimestamp(ts_s, tz=timezone.utc).isoformat().replace("+00:00", "Z")
-
-
-def iso_ms(ts_ms: int) -> str:
-    return iso_s(ts_ms / 1000.0)
 
 
 # --- helpers (pure) ----------------------------------------------------------------------

@@ -123,7 +123,7 @@ def new_readings(
     for i, (t, v) in enumerate(zip(ts_ms.tolist(), dicts)):
         if t in stored:
             if stored[t] != v:
-                iso = _iso_ms(t)
+                iso = grid.iso_ms(t)
                 raise Conflict(
                     f"body.readings[{i}].ts: {iso} is already stored for {asset_id!r} with different values; "
                     "a reading cannot be changed once stored",
@@ -137,12 +137,6 @@ def new_readings(
             taken.add(t)
             new_pos.append(i)
     return new_pos, duplicates
-
-
-def _iso_ms(ts_ms: int) -> str:
-    from datetime import datetime, timezone
-
-    return datetime.fromtimestamp(ts_ms / 1000.0, tz=timezone.utc).isoformat().replace("+00:00", "Z")
 
 
 @dataclass

@@ -5,7 +5,8 @@ from __future__ import annotations
 from datetime import datetime, timedelta, timezone
 
 from service.db.models import Alert
-from service.export_data import event_rows, iso_ms
+from service.export_data import event_rows
+from service.grid import iso_ms
 
 T0 = datetime(2026, 10, 14, 6, 0, tzinfo=timezone.utc)
 
